@@ -1,0 +1,1071 @@
+//! Channel and model configuration, read from our own TOML format.
+//!
+//! The file says which model (`model`) each channel runs: a `[channels.default]` table for every channel, and
+//! `[[channels.override]]` tables whose `match` glob (globset syntax, case-sensitive, on the channel name) picks
+//! channels out. The first override that matches wins, in file order, so put specific patterns (`TT-101`) before
+//! general ones (`TT-*`). `gaugewise fit` writes blocks in this format ([`model_to_toml`]); the daemon reads it and
+//! will later find its `broker`, `inputs` and `output` sections here too. `config/plant.toml` is a worked example.
+//!
+//! Reading has two stages. Serde fills raw structs that deny unknown keys, because a typo (`obs_vr`) that passed
+//! silently would run a channel on a default the engineer believes they overrode. Validation then turns each table
+//! into a [`ModelSpec`]: keys the chosen model does not use are errors too, for the same reason. Every error names
+//! the file and the key path, with override tables counted from 0 as in `channels.override[0].tau`.
+
+use crate::model::{ModelError, ModelKind, ModelParams, ModelSpec};
+use globset::{Glob, GlobMatcher};
+use serde::Deserialize;
+use std::path::Path;
+use thiserror::Error;
+
+/// Why a configuration could not be used. Every message names the file and, where there is one, the key path.
+#[derive(Debug, Error)]
+pub enum ConfigError {
+    #[error("{path}: cannot read config: {source}")]
+    Io {
+        path: String,
+        #[source]
+        source: std::io::Error,
+    },
+    /// The text is not TOML at all.
+    #[error("{file}: line {line}, column {column}: {message}")]
+    Syntax {
+        file: String,
+        line: usize,
+        column: usize,
+        message: String,
+    },
+    /// TOML, but not our schema: an unknown key or a value of the wrong type.
+    #[error("{file}: {key}: {message} (line {line}, column {column})")]
+    Schema {
+        file: String,
+        key: String,
+        line: usize,
+        column: usize,
+        message: String,
+    },
+    #[error("{file}: {key}: missing ({hint})")]
+    Missing {
+        file: String,
+        key: String,
+        hint: String,
+    },
+    #[error("{file}: {key}: not a parameter of model {model} (it takes {expected})")]
+    NotUsed {
+        file: String,
+        key: String,
+        model: String,
+        expected: String,
+    },
+    /// Present and of the right type, but not a usable value.
+    #[error("{file}: {key}: {message}")]
+    Invalid {
+        file: String,
+        key: String,
+        message: String,
+    },
+}
+
+impl ConfigError {
+    /// The key path the error is about, if any (e.g. `channels.override[1].tau`).
+    pub fn key(&self) -> Option<&str> {
+        match self {
+            ConfigError::Io { .. } | ConfigError::Syntax { .. } => None,
+            ConfigError::Schema { key, .. }
+            | ConfigError::Missing { key, .. }
+            | ConfigError::NotUsed { key, .. }
+            | ConfigError::Invalid { key, .. } => Some(key),
+        }
+    }
+}
+
+/// A whole configuration file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Config {
+    pub channels: ChannelConfig,
+}
+
+/// Which model each channel runs.
+#[derive(Debug, Clone)]
+pub struct ChannelConfig {
+    /// Used by every channel no override matches.
+    pub default: ModelSpec,
+    /// Tried in order; the first whose pattern matches the channel name wins.
+    pub overrides: Vec<Override>,
+    /// Compiled `overrides[i].pattern`, kept beside the public fields so lookups do not recompile globs.
+    matchers: Vec<GlobMatcher>,
+}
+
+/// A model for the channels whose name matches `pattern` (a globset glob).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Override {
+    pub pattern: String,
+    pub model: ModelSpec,
+}
+
+impl PartialEq for ChannelConfig {
+    fn eq(&self, other: &Self) -> bool {
+        // The matchers are derived from the patterns, so they need no comparison.
+        self.default == other.default && self.overrides == other.overrides
+    }
+}
+
+impl ChannelConfig {
+    /// Builds a configuration in code; fails on the first pattern that is not a valid glob.
+    pub fn new(default: ModelSpec, overrides: Vec<Override>) -> Result<Self, globset::Error> {
+        let matchers = overrides
+            .iter()
+            .map(|o| Glob::new(&o.pattern).map(|g| g.compile_matcher()))
+            .collect::<Result<Vec<_>, _>>()?;
+        Ok(Self {
+            default,
+            overrides,
+            matchers,
+        })
+    }
+
+    /// The model of the first override whose pattern matches `channel`, else the default.
+    pub fn model_for(&self, channel: &str) -> &ModelSpec {
+        for (i, o) in self.overrides.iter().enumerate() {
+            // The fields are public, so the cached matcher may be stale if a caller edited a pattern; recompile
+            // then (an invalid edited pattern matches nothing) rather than match against the wrong glob.
+            let hit = match self.matchers.get(i) {
+                Some(m) if m.glob().glob() == o.pattern => m.is_match(channel),
+                _ => Glob::new(&o.pattern).is_ok_and(|g| g.compile_matcher().is_match(channel)),
+            };
+            if hit {
+                return &o.model;
+            }
+        }
+        &self.default
+    }
+}
+
+impl Config {
+    /// Reads and validates a configuration file; errors name the path as given.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let source = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError::Io {
+            path: source.clone(),
+            source: e,
+        })?;
+        Config::from_str(&text, &source)
+    }
+
+    /// Parses and validates configuration text; `source` names it in errors (usually the file path).
+    #[allow(clippy::should_implement_trait)] // FromStr cannot carry the source name errors need.
+    pub fn from_str(text: &str, source: &str) -> Result<Config, ConfigError> {
+        let raw: RawConfig = toml::from_str(text).map_err(|e| serde_error(text, source, &e))?;
+        let channels = raw.channels.unwrap_or_default();
+        let default = channels.default.ok_or_else(|| ConfigError::Missing {
+            file: source.to_string(),
+            key: "channels.default".to_string(),
+            hint: "every config needs a [channels.default] table, the model of channels no override matches"
+                .to_string(),
+        })?;
+        if default.pattern.is_some() {
+            return Err(ConfigError::Invalid {
+                file: source.to_string(),
+                key: "channels.default.match".to_string(),
+                message: "the default applies to every channel; use a [[channels.override]] table to match names"
+                    .to_string(),
+            });
+        }
+        let default = build_spec(&default, "channels.default", source)?;
+        let mut overrides = Vec::with_capacity(channels.overrides.len());
+        let mut matchers = Vec::with_capacity(channels.overrides.len());
+        for (i, raw) in channels.overrides.iter().enumerate() {
+            let path = format!("channels.override[{i}]");
+            let pattern = raw.pattern.clone().ok_or_else(|| ConfigError::Missing {
+                file: source.to_string(),
+                key: format!("{path}.match"),
+                hint: "a glob on the channel name, e.g. match = \"TT-*\"".to_string(),
+            })?;
+            let glob = Glob::new(&pattern).map_err(|e| ConfigError::Invalid {
+                file: source.to_string(),
+                key: format!("{path}.match"),
+                message: format!("invalid glob: {}", e.kind()),
+            })?;
+            let model = build_spec(raw, &path, source)?;
+            matchers.push(glob.compile_matcher());
+            overrides.push(Override { pattern, model });
+        }
+        Ok(Config {
+            channels: ChannelConfig {
+                default,
+                overrides,
+                matchers,
+            },
+        })
+    }
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "a table with a [channels] section")]
+struct RawConfig {
+    channels: Option<RawChannels>,
+    // Later sections of the daemon go here, each a deny_unknown_fields struct of its own:
+    // `broker` (MQTT connection), `inputs` (topics to channels), `output` (what is published where).
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "a table with default and override")]
+struct RawChannels {
+    default: Option<RawModel>,
+    #[serde(rename = "override", default)]
+    overrides: Vec<RawModel>,
+}
+
+/// One model table. Default and override tables share it: a `match` in the default is refused in validation,
+/// with a better message than serde's unknown-key one.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "a table of model settings")]
+struct RawModel {
+    #[serde(rename = "match")]
+    pattern: Option<String>,
+    model: Option<String>,
+    interval: Option<f64>,
+    mean: Option<f64>,
+    tau: Option<f64>,
+    state_var: Option<f64>,
+    obs_var: Option<f64>,
+    level_var: Option<f64>,
+    slope_var: Option<f64>,
+    ar: Option<Vec<f64>>,
+    ma: Option<Vec<f64>>,
+    var: Option<f64>,
+}
+
+impl RawModel {
+    /// The model parameter keys present, in the order the format lists them.
+    fn given(&self) -> Vec<&'static str> {
+        let keys: [(&'static str, bool); 10] = [
+            ("interval", self.interval.is_some()),
+            ("mean", self.mean.is_some()),
+            ("tau", self.tau.is_some()),
+            ("state_var", self.state_var.is_some()),
+            ("obs_var", self.obs_var.is_some()),
+            ("level_var", self.level_var.is_some()),
+            ("slope_var", self.slope_var.is_some()),
+            ("ar", self.ar.is_some()),
+            ("ma", self.ma.is_some()),
+            ("var", self.var.is_some()),
+        ];
+        keys.iter()
+            .filter(|(_, present)| *present)
+            .map(|(k, _)| *k)
+            .collect()
+    }
+}
+
+/// The parameter keys of a model kind, in the order the format lists them.
+fn keys_of(kind: ModelKind) -> &'static [&'static str] {
+    match kind {
+        ModelKind::Level => &["interval", "obs_var", "level_var"],
+        ModelKind::Lag => &["interval", "mean", "tau", "state_var", "obs_var"],
+        ModelKind::Trend => &["interval", "obs_var", "level_var", "slope_var"],
+        ModelKind::Arma { .. } => &["interval", "mean", "ar", "ma", "var"],
+    }
+}
+
+fn build_spec(raw: &RawModel, path: &str, file: &str) -> Result<ModelSpec, ConfigError> {
+    let key = |k: &str| format!("{path}.{k}");
+    let text = raw.model.as_deref().ok_or_else(|| ConfigError::Missing {
+        file: file.to_string(),
+        key: key("model"),
+        hint: "one of level, lag, trend, arma(p,q)".to_string(),
+    })?;
+    let kind = ModelKind::parse(text).map_err(|e| ConfigError::Invalid {
+        file: file.to_string(),
+        key: key("model"),
+        message: e.to_string(),
+    })?;
+    let allowed = keys_of(kind);
+    if let Some(k) = raw.given().into_iter().find(|k| !allowed.contains(k)) {
+        return Err(ConfigError::NotUsed {
+            file: file.to_string(),
+            key: key(k),
+            model: kind.to_string(),
+            expected: allowed.join(", "),
+        });
+    }
+    let need = |name: &str, value: Option<f64>| {
+        value.ok_or_else(|| ConfigError::Missing {
+            file: file.to_string(),
+            key: key(name),
+            hint: format!("model {kind} needs {}", allowed.join(", ")),
+        })
+    };
+    let interval = need("interval", raw.interval)?;
+    let params = match kind {
+        ModelKind::Level => ModelParams::Level {
+            obs_var: need("obs_var", raw.obs_var)?,
+            level_var: need("level_var", raw.level_var)?,
+        },
+        ModelKind::Lag => ModelParams::Lag {
+            mean: need("mean", raw.mean)?,
+            tau: need("tau", raw.tau)?,
+            state_var: need("state_var", raw.state_var)?,
+            obs_var: need("obs_var", raw.obs_var)?,
+        },
+        ModelKind::Trend => ModelParams::Trend {
+            obs_var: need("obs_var", raw.obs_var)?,
+            level_var: need("level_var", raw.level_var)?,
+            slope_var: need("slope_var", raw.slope_var)?,
+        },
+        ModelKind::Arma { p, q } => {
+            let mean = need("mean", raw.mean)?;
+            let ar = coefficients("ar", raw.ar.as_deref(), p, kind, path, file)?;
+            let ma = coefficients("ma", raw.ma.as_deref(), q, kind, path, file)?;
+            let var = need("var", raw.var)?;
+            ModelParams::Arma { mean, ar, ma, var }
+        }
+    };
+    let spec = ModelSpec { interval, params };
+    spec.validate().map_err(|e| model_error(e, path, file))?;
+    Ok(spec)
+}
+
+/// An ARMA coefficient list: required when its order is > 0 (may be omitted when 0), of exactly that length.
+fn coefficients(
+    name: &str,
+    given: Option<&[f64]>,
+    order: usize,
+    kind: ModelKind,
+    path: &str,
+    file: &str,
+) -> Result<Vec<f64>, ConfigError> {
+    let values = match given {
+        Some(v) => v.to_vec(),
+        None if order == 0 => Vec::new(),
+        None => {
+            return Err(ConfigError::Missing {
+                file: file.to_string(),
+                key: format!("{path}.{name}"),
+                hint: format!(
+                    "model {kind} needs {order} {name} coefficient(s), e.g. {name} = [0.5]"
+                ),
+            })
+        }
+    };
+    if values.len() != order {
+        return Err(ConfigError::Invalid {
+            file: file.to_string(),
+            key: format!("{path}.{name}"),
+            message: format!(
+                "has {} coefficient(s) but model {kind} needs {order}",
+                values.len()
+            ),
+        });
+    }
+    // TOML allows nan and inf; catching them here names the element, which ModelSpec::validate cannot.
+    if let Some((i, v)) = values.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+        return Err(ConfigError::Invalid {
+            file: file.to_string(),
+            key: format!("{path}.{name}[{i}]"),
+            message: format!("must be finite (got {v})"),
+        });
+    }
+    Ok(values)
+}
+
+/// Restates a model error against the key it is about; ModelError names parameters, we name key paths.
+fn model_error(e: ModelError, path: &str, file: &str) -> ConfigError {
+    let (key, message) = match e {
+        ModelError::NotPositive { name, value } => {
+            (name, format!("must be a finite number > 0 (got {value})"))
+        }
+        ModelError::Negative { name, value } => {
+            (name, format!("must be a finite number >= 0 (got {value})"))
+        }
+        ModelError::NotFinite { name, value } => {
+            // Coefficients were checked one by one already; this is a fallback naming the lists.
+            let key = if name == "arma coefficient" {
+                "ar"
+            } else {
+                name
+            };
+            (key, format!("must be finite (got {value})"))
+        }
+        ModelError::NotStationary(ar) => (
+            "ar",
+            format!("{ar:?} is not stationary: the process would drift without bound"),
+        ),
+        e @ (ModelError::Order { .. } | ModelError::UnknownKind(_)) => ("model", e.to_string()),
+    };
+    ConfigError::Invalid {
+        file: file.to_string(),
+        key: format!("{path}.{key}"),
+        message,
+    }
+}
+
+/// Turns a serde/TOML error into one naming the key path, found by locating the error's byte span in the parsed
+/// document (toml reports spans, not paths).
+fn serde_error(text: &str, file: &str, e: &toml::de::Error) -> ConfigError {
+    let span = e.span().unwrap_or(0..0);
+    let (line, column) = line_column(text, span.start);
+    let message = e.message().trim().to_string();
+    let path = match toml::de::DeTable::parse(text) {
+        Ok(doc) => {
+            let mut best = (0usize, String::new());
+            locate(doc.get_ref(), &span, String::new(), 1, &mut best);
+            best.1
+        }
+        Err(_) => {
+            return ConfigError::Syntax {
+                file: file.to_string(),
+                line,
+                column,
+                message,
+            }
+        }
+    };
+    let message = if path.ends_with("override") && message.contains("expected a sequence") {
+        format!("{message}; write each override as a [[channels.override]] table (double brackets)")
+    } else {
+        message
+    };
+    ConfigError::Schema {
+        file: file.to_string(),
+        key: if path.is_empty() {
+            "(top level)".to_string()
+        } else {
+            path
+        },
+        line,
+        column,
+        message,
+    }
+}
+
+/// Deepest key path whose key or value span contains `span`. Children are searched even when their parent's span
+/// does not contain it: a `[table]`'s span is only its header line.
+fn locate(
+    table: &toml::de::DeTable<'_>,
+    span: &std::ops::Range<usize>,
+    prefix: String,
+    depth: usize,
+    best: &mut (usize, String),
+) {
+    for (k, v) in table.iter() {
+        let name = if prefix.is_empty() {
+            key_text(k.get_ref())
+        } else {
+            format!("{prefix}.{}", key_text(k.get_ref()))
+        };
+        if (contains(&k.span(), span) || contains(&v.span(), span)) && depth > best.0 {
+            *best = (depth, name.clone());
+        }
+        descend(v, span, name, depth + 1, best);
+    }
+}
+
+fn descend(
+    value: &toml::Spanned<toml::de::DeValue<'_>>,
+    span: &std::ops::Range<usize>,
+    name: String,
+    depth: usize,
+    best: &mut (usize, String),
+) {
+    match value.get_ref() {
+        toml::de::DeValue::Table(t) => locate(t, span, name, depth, best),
+        toml::de::DeValue::Array(items) => {
+            for (i, item) in items.iter().enumerate() {
+                let name = format!("{name}[{i}]");
+                if contains(&item.span(), span) && depth > best.0 {
+                    *best = (depth, name.clone());
+                }
+                descend(item, span, name, depth + 1, best);
+            }
+        }
+        _ => {}
+    }
+}
+
+fn contains(outer: &std::ops::Range<usize>, inner: &std::ops::Range<usize>) -> bool {
+    outer.start <= inner.start && inner.end <= outer.end && outer.start < outer.end
+}
+
+/// A key as written in a path: bare if TOML allows it bare, else quoted.
+fn key_text(key: &str) -> String {
+    let bare = !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-');
+    if bare {
+        key.to_string()
+    } else {
+        toml_string(key)
+    }
+}
+
+/// 1-based line and column (in characters) of a byte offset.
+fn line_column(text: &str, offset: usize) -> (usize, usize) {
+    let (mut line, mut column) = (1, 1);
+    for (i, c) in text.char_indices() {
+        if i >= offset {
+            break;
+        }
+        if c == '\n' {
+            line += 1;
+            column = 1;
+        } else {
+            column += 1;
+        }
+    }
+    (line, column)
+}
+
+/// Renders `model` as a ready-to-paste table in this module's format, e.g. for `gaugewise fit --emit-config`.
+///
+/// `table_header` is used verbatim if it starts with `[` (e.g. `"[channels.default]"`); otherwise it is a table
+/// name, written `[[name]]` when `pattern` is given (overrides are an array of tables) and `[name]` when not. A
+/// pattern becomes the `match` key. Floats are written with Rust's shortest round-trip form (Debug, not Display:
+/// Display writes 1e300 as a 301-digit integer, which TOML would read as an out-of-range integer).
+pub fn model_to_toml(model: &ModelSpec, table_header: &str, pattern: Option<&str>) -> String {
+    let header = table_header.trim();
+    let mut out = if header.starts_with('[') {
+        header.to_string()
+    } else if pattern.is_some() {
+        format!("[[{header}]]")
+    } else {
+        format!("[{header}]")
+    };
+    out.push('\n');
+    if let Some(p) = pattern {
+        out.push_str(&format!("match = {}\n", toml_string(p)));
+    }
+    out.push_str(&format!("model = \"{}\"\n", model.kind()));
+    let mut line = |key: &str, value: String| out.push_str(&format!("{key} = {value}\n"));
+    line("interval", toml_float(model.interval));
+    match &model.params {
+        ModelParams::Level { obs_var, level_var } => {
+            line("obs_var", toml_float(*obs_var));
+            line("level_var", toml_float(*level_var));
+        }
+        ModelParams::Lag {
+            mean,
+            tau,
+            state_var,
+            obs_var,
+        } => {
+            line("mean", toml_float(*mean));
+            line("tau", toml_float(*tau));
+            line("state_var", toml_float(*state_var));
+            line("obs_var", toml_float(*obs_var));
+        }
+        ModelParams::Trend {
+            obs_var,
+            level_var,
+            slope_var,
+        } => {
+            line("obs_var", toml_float(*obs_var));
+            line("level_var", toml_float(*level_var));
+            line("slope_var", toml_float(*slope_var));
+        }
+        ModelParams::Arma { mean, ar, ma, var } => {
+            line("mean", toml_float(*mean));
+            // An empty list is what the format means by omitting the key, and reads more plainly.
+            for (key, list) in [("ar", ar), ("ma", ma)] {
+                if !list.is_empty() {
+                    let items: Vec<String> = list.iter().map(|v| toml_float(*v)).collect();
+                    line(key, format!("[{}]", items.join(", ")));
+                }
+            }
+            line("var", toml_float(*var));
+        }
+    }
+    out
+}
+
+fn toml_float(x: f64) -> String {
+    if x.is_nan() {
+        "nan".to_string()
+    } else if x.is_infinite() {
+        if x > 0.0 { "inf" } else { "-inf" }.to_string()
+    } else {
+        // Debug always has a '.' or an exponent, so TOML reads a float, and is the shortest exact form.
+        format!("{x:?}")
+    }
+}
+
+fn toml_string(s: &str) -> String {
+    let mut out = String::with_capacity(s.len() + 2);
+    out.push('"');
+    for c in s.chars() {
+        match c {
+            '"' => out.push_str("\\\""),
+            '\\' => out.push_str("\\\\"),
+            '\n' => out.push_str("\\n"),
+            '\t' => out.push_str("\\t"),
+            '\r' => out.push_str("\\r"),
+            c if c.is_control() => out.push_str(&format!("\\u{:04X}", c as u32)),
+            c => out.push(c),
+        }
+    }
+    out.push('"');
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    const FILE: &str = "config/test.toml";
+
+    fn parse(text: &str) -> Result<Config, ConfigError> {
+        Config::from_str(text, FILE)
+    }
+
+    fn message(text: &str) -> String {
+        let e = parse(text).expect_err("expected an error");
+        let m = e.to_string();
+        assert!(
+            m.starts_with(&format!("{FILE}: ")),
+            "message does not start with the file: {m}"
+        );
+        assert!(!m.contains('\n'), "message is not one line: {m}");
+        m
+    }
+
+    const LAG: &str =
+        "[channels.default]\nmodel = \"lag\"\ninterval = 10.0\nmean = 72.5\ntau = 300.0\n\
+                       state_var = 0.015\nobs_var = 0.04\n";
+
+    #[test]
+    fn brief_example_parses() {
+        let text = format!(
+            "{LAG}\n[[channels.override]]\nmatch = \"TT-*\"\nmodel = \"level\"\ninterval = 10.0\nobs_var = 0.04\n\
+             level_var = 0.01\n\n[[channels.override]]\nmatch = \"FT-201\"\nmodel = \"arma(1,1)\"\ninterval = 1.0\n\
+             mean = 12.0\nar = [0.8]\nma = [-0.3]\nvar = 0.5\n"
+        );
+        let c = parse(&text).unwrap().channels;
+        assert_eq!(c.default.kind(), ModelKind::Lag);
+        assert_eq!(c.overrides.len(), 2);
+        assert_eq!(c.model_for("TT-7").kind(), ModelKind::Level);
+        assert_eq!(c.model_for("FT-201").kind(), ModelKind::Arma { p: 1, q: 1 });
+        assert_eq!(c.model_for("FT-202").kind(), ModelKind::Lag);
+        assert_eq!(
+            c.model_for("FT-201").params,
+            ModelParams::Arma {
+                mean: 12.0,
+                ar: vec![0.8],
+                ma: vec![-0.3],
+                var: 0.5
+            }
+        );
+    }
+
+    #[test]
+    fn first_matching_override_wins() {
+        let text = format!(
+            "{LAG}[[channels.override]]\nmatch = \"TT-1*\"\nmodel = \"level\"\ninterval = 1\nobs_var = 1\n\
+             level_var = 1\n[[channels.override]]\nmatch = \"TT-*\"\nmodel = \"trend\"\ninterval = 1\nobs_var = 1\n\
+             level_var = 1\nslope_var = 1\n"
+        );
+        let c = parse(&text).unwrap().channels;
+        assert_eq!(c.model_for("TT-101").kind(), ModelKind::Level);
+        assert_eq!(c.model_for("TT-201").kind(), ModelKind::Trend);
+        assert_eq!(
+            c.model_for("tt-201").kind(),
+            ModelKind::Lag,
+            "matching is case-sensitive"
+        );
+    }
+
+    #[test]
+    fn model_for_follows_edited_patterns() {
+        let mut c = parse(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"A*\"\nmodel = \"level\"\ninterval = 1\nobs_var = 1\nlevel_var = 1\n"
+        ))
+        .unwrap()
+        .channels;
+        c.overrides[0].pattern = "B*".to_string();
+        assert_eq!(c.model_for("A1").kind(), ModelKind::Lag);
+        assert_eq!(c.model_for("B1").kind(), ModelKind::Level);
+        let built = ChannelConfig::new(c.default.clone(), c.overrides.clone()).unwrap();
+        assert_eq!(built, c);
+        assert!(ChannelConfig::new(
+            c.default.clone(),
+            vec![Override {
+                pattern: "a[".into(),
+                ..c.overrides[0].clone()
+            }]
+        )
+        .is_err());
+    }
+
+    #[test]
+    fn plant_example_loads() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("config/plant.toml");
+        let c = Config::load(&path).unwrap().channels;
+        assert_eq!(c.model_for("TT-101").kind(), ModelKind::Lag);
+        assert_eq!(c.model_for("TT-102").kind(), ModelKind::Level);
+        assert_eq!(c.model_for("FT-201").kind(), ModelKind::Arma { p: 1, q: 1 });
+        assert_eq!(c.model_for("LT-301").kind(), ModelKind::Trend);
+        assert_eq!(c.model_for("PT-999"), &c.default);
+    }
+
+    #[test]
+    fn missing_file_names_path() {
+        let e = Config::load(Path::new("/nonexistent/plant.toml"))
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.starts_with("/nonexistent/plant.toml: cannot read config:"),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn unknown_keys_are_errors() {
+        let m = message(&format!("brokr = 1\n{LAG}"));
+        assert!(
+            m.starts_with("config/test.toml: brokr: unknown field `brokr`"),
+            "{m}"
+        );
+        assert!(m.ends_with("(line 1, column 1)"), "{m}");
+        let m = message(&format!("{LAG}obs_vr = 0.1\n"));
+        assert!(
+            m.starts_with("config/test.toml: channels.default.obs_vr: unknown field `obs_vr`"),
+            "{m}"
+        );
+        let m = message(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"a\"\nmodel = \"level\"\n[[channels.override]]\nmatch = \"b\"\n\
+             model = \"level\"\nlevel_vr = 1\n"
+        ));
+        assert!(
+            m.starts_with(
+                "config/test.toml: channels.override[1].level_vr: unknown field `level_vr`"
+            ),
+            "{m}"
+        );
+        let m = message(&format!("{LAG}[channels.extra]\nx = 1\n"));
+        assert!(
+            m.starts_with("config/test.toml: channels.extra: unknown field `extra`"),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn wrong_types_name_the_key() {
+        let m = message(&LAG.replace("tau = 300.0", "tau = \"300\""));
+        assert_eq!(
+            m,
+            "config/test.toml: channels.default.tau: invalid type: string \"300\", expected f64 (line 5, column 7)"
+        );
+        let m = message(&LAG.replace("model = \"lag\"", "model = 3"));
+        assert!(
+            m.starts_with("config/test.toml: channels.default.model: invalid type: integer"),
+            "{m}"
+        );
+        let m = message(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"a\"\nmodel = \"arma(2,0)\"\nar = [0.5, \"x\"]\n"
+        ));
+        assert!(
+            m.starts_with("config/test.toml: channels.override[0].ar[1]: invalid type: string"),
+            "{m}"
+        );
+        let m = message(&format!("{LAG}[channels.override]\nmatch = \"a\"\n"));
+        assert!(
+            m.starts_with("config/test.toml: channels.override: invalid type"),
+            "{m}"
+        );
+        assert!(m.contains("[[channels.override]]"), "{m}");
+        let m = message("channels = 3\n");
+        assert!(
+            m.starts_with("config/test.toml: channels: invalid type: integer `3`"),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn syntax_errors_give_line_and_column() {
+        let m = message("[channels.default\nmodel = \"lag\"\n");
+        assert!(
+            m.starts_with("config/test.toml: line 1, column 18: "),
+            "{m}"
+        );
+        let e = parse("[channels.default\n").unwrap_err();
+        assert!(matches!(e, ConfigError::Syntax { line: 1, .. }));
+        assert_eq!(e.key(), None);
+    }
+
+    #[test]
+    fn missing_sections_and_keys() {
+        assert!(message("").starts_with("config/test.toml: channels.default: missing ("));
+        assert!(
+            message("[channels]\n").starts_with("config/test.toml: channels.default: missing (")
+        );
+        assert_eq!(
+            message("[channels.default]\ninterval = 1.0\n"),
+            "config/test.toml: channels.default.model: missing (one of level, lag, trend, arma(p,q))"
+        );
+        assert_eq!(
+            message(&LAG.replace("tau = 300.0\n", "")),
+            "config/test.toml: channels.default.tau: missing (model lag needs interval, mean, tau, state_var, obs_var)"
+        );
+        assert!(message(&LAG.replace("interval = 10.0\n", ""))
+            .starts_with("config/test.toml: channels.default.interval: missing"));
+        let m = message(&format!("{LAG}[[channels.override]]\nmodel = \"level\"\n"));
+        assert!(
+            m.starts_with("config/test.toml: channels.override[0].match: missing"),
+            "{m}"
+        );
+        let m = message(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"a\"\nmodel = \"arma(1,1)\"\ninterval = 1\nmean = 0\nar = [0.5]\n\
+             var = 1\n"
+        ));
+        assert!(
+            m.starts_with(
+                "config/test.toml: channels.override[0].ma: missing (model arma(1,1) needs 1 ma"
+            ),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn unknown_model_and_bad_order() {
+        assert_eq!(
+            message(&LAG.replace("\"lag\"", "\"kalman\"")),
+            "config/test.toml: channels.default.model: unknown model 'kalman' (expected level, lag, trend or arma(p,q))"
+        );
+        let m = message(&LAG.replace("\"lag\"", "\"arma(4,0)\""));
+        assert!(
+            m.starts_with("config/test.toml: channels.default.model: arma order (4,0)"),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn parameter_of_another_model_is_an_error() {
+        assert_eq!(
+            message(&format!("{LAG}level_var = 0.01\n")),
+            "config/test.toml: channels.default.level_var: not a parameter of model lag \
+             (it takes interval, mean, tau, state_var, obs_var)"
+        );
+        let m = message(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"a\"\nmodel = \"level\"\ninterval = 1\nobs_var = 1\n\
+             level_var = 1\ntau = 5\n"
+        ));
+        assert!(
+            m.starts_with(
+                "config/test.toml: channels.override[0].tau: not a parameter of model level"
+            ),
+            "{m}"
+        );
+        let m = message(&LAG.replace(
+            "[channels.default]\n",
+            "[channels.default]\nmatch = \"x\"\n",
+        ));
+        assert!(
+            m.starts_with("config/test.toml: channels.default.match: "),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn invalid_values_name_the_key() {
+        let text = format!(
+            "{LAG}[[channels.override]]\nmatch = \"a\"\nmodel = \"level\"\ninterval = 1\nobs_var = 1\nlevel_var = 1\n\
+             [[channels.override]]\nmatch = \"b\"\nmodel = \"lag\"\ninterval = 1\nmean = 0\ntau = -3\nstate_var = 1\n\
+             obs_var = 1\n"
+        );
+        assert_eq!(
+            message(&text),
+            "config/test.toml: channels.override[1].tau: must be a finite number > 0 (got -3)"
+        );
+        assert_eq!(
+            message(&LAG.replace("obs_var = 0.04", "obs_var = -0.5")),
+            "config/test.toml: channels.default.obs_var: must be a finite number >= 0 (got -0.5)"
+        );
+        assert_eq!(
+            message(&LAG.replace("mean = 72.5", "mean = nan")),
+            "config/test.toml: channels.default.mean: must be finite (got NaN)"
+        );
+        assert_eq!(
+            message(&LAG.replace("interval = 10.0", "interval = 0")),
+            "config/test.toml: channels.default.interval: must be a finite number > 0 (got 0)"
+        );
+    }
+
+    #[test]
+    fn arma_coefficient_checks() {
+        let arma = |model: &str, ar: &str| {
+            format!(
+                "[channels.default]\nmodel = \"{model}\"\ninterval = 1\nmean = 0\n{ar}var = 1\n"
+            )
+        };
+        let m = message(&arma("arma(2,0)", "ar = [1.2, -0.1]\n"));
+        assert!(
+            m.starts_with("config/test.toml: channels.default.ar: [1.2, -0.1] is not stationary"),
+            "{m}"
+        );
+        assert_eq!(
+            message(&arma("arma(1,0)", "ar = [0.5, 0.1]\n")),
+            "config/test.toml: channels.default.ar: has 2 coefficient(s) but model arma(1,0) needs 1"
+        );
+        assert_eq!(
+            message(&arma("arma(1,0)", "ar = [inf]\n")),
+            "config/test.toml: channels.default.ar[0]: must be finite (got inf)"
+        );
+        assert_eq!(
+            message(&arma("arma(1,0)", "ar = [0.5]\nma = [0.1]\n")),
+            "config/test.toml: channels.default.ma: has 1 coefficient(s) but model arma(1,0) needs 0"
+        );
+        // An order of 0 may omit its list or give it empty.
+        parse(&arma("arma(0,1)", "ma = [0.3]\n")).unwrap();
+        parse(&arma("arma(1,0)", "ar = [0.3]\nma = []\n")).unwrap();
+    }
+
+    #[test]
+    fn bad_glob_names_the_key() {
+        let m = message(&format!(
+            "{LAG}[[channels.override]]\nmatch = \"TT-[\"\nmodel = \"level\"\ninterval = 1\nobs_var = 1\nlevel_var = 1\n"
+        ));
+        assert!(
+            m.starts_with("config/test.toml: channels.override[0].match: invalid glob"),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn every_error_has_a_key() {
+        for text in [
+            "brokr = 1\n".to_string(),
+            format!("{LAG}obs_vr = 1\n"),
+            LAG.replace("tau = 300.0\n", ""),
+            format!("{LAG}level_var = 1\n"),
+            LAG.replace("tau = 300.0", "tau = -1"),
+        ] {
+            let e = parse(&text).unwrap_err();
+            let key = e.key().expect("error has a key").to_string();
+            assert!(e.to_string().contains(&key));
+        }
+    }
+
+    fn specs() -> Vec<ModelSpec> {
+        vec![
+            ModelSpec {
+                interval: 10.0,
+                params: ModelParams::Level {
+                    obs_var: 0.04,
+                    level_var: 1e-7,
+                },
+            },
+            ModelSpec {
+                interval: 0.1,
+                params: ModelParams::Lag {
+                    mean: -72.0 - 1.0 / 7.0,
+                    tau: 300.0,
+                    state_var: 0.015,
+                    obs_var: 0.0,
+                },
+            },
+            ModelSpec {
+                interval: 60.0,
+                params: ModelParams::Trend {
+                    obs_var: 1e300,
+                    level_var: 2.5e-12,
+                    slope_var: 1.0 / 3.0,
+                },
+            },
+            ModelSpec {
+                interval: 1.0,
+                params: ModelParams::Arma {
+                    mean: 12.0,
+                    ar: vec![0.8, -0.1],
+                    ma: vec![-0.3],
+                    var: 0.5,
+                },
+            },
+            ModelSpec {
+                interval: 1.0,
+                params: ModelParams::Arma {
+                    mean: 0.0,
+                    ar: vec![],
+                    ma: vec![0.4, 0.1, 0.05],
+                    var: 2.0,
+                },
+            },
+        ]
+    }
+
+    #[test]
+    fn rendering_round_trips_every_kind() {
+        for spec in specs() {
+            let default = model_to_toml(&spec, "[channels.default]", None);
+            let over = model_to_toml(&spec, "channels.override", Some("TT-\"1*"));
+            let c = parse(&format!("{default}\n{over}"))
+                .unwrap_or_else(|e| panic!("{e}\n{default}\n{over}"));
+            assert_eq!(c.channels.default, spec);
+            assert_eq!(c.channels.overrides[0].model, spec);
+            assert_eq!(c.channels.overrides[0].pattern, "TT-\"1*");
+        }
+    }
+
+    #[test]
+    fn rendering_matches_the_format() {
+        let spec = ModelSpec {
+            interval: 10.0,
+            params: ModelParams::Lag {
+                mean: 72.5,
+                tau: 300.0,
+                state_var: 0.015,
+                obs_var: 0.04,
+            },
+        };
+        assert_eq!(
+            model_to_toml(&spec, "channels.default", None),
+            "[channels.default]\nmodel = \"lag\"\ninterval = 10.0\nmean = 72.5\ntau = 300.0\nstate_var = 0.015\n\
+             obs_var = 0.04\n"
+        );
+        let over = model_to_toml(&specs()[3], "channels.override", Some("FT-201"));
+        assert_eq!(
+            over,
+            "[[channels.override]]\nmatch = \"FT-201\"\nmodel = \"arma(2,1)\"\ninterval = 1.0\nmean = 12.0\n\
+             ar = [0.8, -0.1]\nma = [-0.3]\nvar = 0.5\n"
+        );
+    }
+
+    proptest! {
+        #[test]
+        fn arbitrary_text_never_panics(text in any::<String>()) {
+            let _ = parse(&text);
+        }
+
+        #[test]
+        fn toml_like_text_never_panics(text in "[\\[\\]a-z_.=\"0-9, \n()*-]{0,200}") {
+            let _ = parse(&text);
+            let _ = parse(&format!("{LAG}{text}"));
+        }
+
+        #[test]
+        fn lag_round_trips(
+            interval in 1e-3f64..1e5,
+            mean in -1e6f64..1e6,
+            tau in 1e-3f64..1e9,
+            state_var in 0.0f64..1e3,
+            obs_var in 0.0f64..1e3,
+        ) {
+            let spec = ModelSpec { interval, params: ModelParams::Lag { mean, tau, state_var, obs_var } };
+            let text = model_to_toml(&spec, "channels.default", None);
+            prop_assert_eq!(parse(&text).unwrap().channels.default, spec);
+        }
+
+        #[test]
+        fn any_finite_float_round_trips(x in any::<f64>().prop_filter("finite", |x| x.is_finite())) {
+            let spec = ModelSpec {
+                interval: 1.0,
+                params: ModelParams::Arma { mean: x, ar: vec![0.5], ma: vec![], var: 1.0 },
+            };
+            let text = model_to_toml(&spec, "channels.default", None);
+            let back = parse(&text).unwrap().channels.default;
+            match back.params {
+                ModelParams::Arma { mean, .. } => prop_assert_eq!(mean.to_bits(), x.to_bits()),
+                other => prop_assert!(false, "wrong kind {:?}", other),
+            }
+        }
+    }
+}

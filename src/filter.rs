@@ -1,0 +1,496 @@
+//! The Kalman filter: one recursive step per sample, for any model in state-space form.
+//!
+//! `Kalman<M, N>` is generic over the model and its state dimension, so the 1-state models compile to scalar
+//! arithmetic and larger ones use fixed-size nalgebra matrices: no allocation per step. [`Filter`] wraps the
+//! concrete models behind one enum for code that picks a model at run time (`channel`, `estimate`, the CLI).
+//!
+//! Conventions (documented in README, "Likelihood convention"):
+//! - A step predicts from the previous sample's time over `dt`, then updates with the value. The first sample
+//!   updates the prior directly.
+//! - A missing value (None or NaN) is predict-only and adds nothing to the log-likelihood.
+//! - Diffuse states use the exact diffuse filter of Koopman (1997, JASA 92:1630) in the univariate form of Durbin &
+//!   Koopman (2012, sections 5.2 and 6.4): while the diffuse part F_inf of the forecast variance is non-zero, a step
+//!   adds -0.5 (ln 2pi + ln F_inf) to the log-likelihood, which is the convention of statsmodels with exact diffuse
+//!   initialisation.
+//! - The covariance update is Joseph's form, symmetrised, so P stays symmetric positive semi-definite over millions
+//!   of steps.
+
+use crate::model::{
+    Arma, Lag, Level, ModelError, ModelParams, ModelSpec, Observation, Prior, StateSpace,
+    Transition, Trend,
+};
+use nalgebra::{SMatrix, SVector};
+
+/// ln(2 pi), the constant of every Gaussian log-density term.
+const LN_2PI: f64 = 1.837_877_066_409_345_3;
+/// Below this a diffuse forecast variance (dimensionless: P_inf starts as the identity) counts as zero.
+const DIFFUSE_TOL: f64 = 1e-9;
+
+/// What happened to one sample.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StepKind {
+    /// Value used to update the state; proper innovation.
+    Observed,
+    /// Value used while the state is still (partly) diffuse: no standardised innovation yet.
+    Diffuse,
+    /// No value: prediction only.
+    Missing,
+    /// Forecast variance was zero (a model with no noise at all): the value could not be weighed.
+    Degenerate,
+}
+
+/// The filter's account of one sample.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Step {
+    pub kind: StepKind,
+    /// One-step forecast of the observation, z'a_{t|t-1} + d.
+    pub predicted: f64,
+    /// Its variance F_t (observation noise included); infinite while diffuse.
+    pub predicted_var: f64,
+    /// y_t minus the forecast; NaN when missing.
+    pub innovation: f64,
+    /// innovation / sqrt(F_t); NaN when missing or diffuse.
+    pub standardized: f64,
+    /// Filtered signal z'a_{t|t} + d: the clean value to publish.
+    pub estimate: f64,
+    /// Variance of the filtered signal (observation noise excluded); infinite while the signal is diffuse.
+    pub estimate_var: f64,
+    /// This sample's log-likelihood contribution.
+    pub loglik: f64,
+}
+
+/// Forecast of the signal and of the next observation `dt` seconds ahead of the last sample.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Forecast {
+    pub signal: f64,
+    pub signal_var: f64,
+    /// Variance of a future observation (signal plus observation noise).
+    pub obs_var: f64,
+}
+
+/// Generic Kalman filter over a model `M` with `N` states.
+#[derive(Debug, Clone)]
+pub struct Kalman<M, const N: usize> {
+    model: M,
+    obs: Observation<N>,
+    a: SVector<f64, N>,
+    p: SMatrix<f64, N, N>,
+    p_inf: SMatrix<f64, N, N>,
+    diffuse: bool,
+    started: bool,
+    cached_dt: f64,
+    cached: Transition<N>,
+}
+
+impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
+    pub fn new(model: M) -> Self {
+        let obs = model.observation();
+        let Prior { a, p_star, p_inf } = model.prior();
+        let cached = model.transition(0.0);
+        Self {
+            diffuse: p_inf.iter().any(|v| *v != 0.0),
+            model,
+            obs,
+            a,
+            p: p_star,
+            p_inf,
+            started: false,
+            cached_dt: 0.0,
+            cached,
+        }
+    }
+
+    pub fn model(&self) -> &M {
+        &self.model
+    }
+
+    /// True while some state still has a diffuse (infinite) variance.
+    pub fn is_diffuse(&self) -> bool {
+        self.diffuse
+    }
+
+    fn transition(&mut self, dt: f64) -> Transition<N> {
+        // Regular sampling repeats the same dt: reuse the matrices instead of recomputing exponentials.
+        if dt != self.cached_dt {
+            self.cached = self.model.transition(dt);
+            self.cached_dt = dt;
+        }
+        self.cached
+    }
+
+    fn predict(&mut self, dt: f64) {
+        let tr = self.transition(dt);
+        self.a = tr.t * self.a + tr.c;
+        self.p = tr.t * self.p * tr.t.transpose() + tr.q;
+        if self.diffuse {
+            self.p_inf = tr.t * self.p_inf * tr.t.transpose();
+        }
+    }
+
+    /// One sample `dt` seconds after the previous one (ignored for the first sample); `None` or NaN is missing.
+    pub fn step(&mut self, dt: f64, y: Option<f64>) -> Step {
+        if self.started {
+            self.predict(dt);
+        }
+        self.started = true;
+        let z = self.obs.z;
+        let h = self.obs.h;
+        let predicted = z.dot(&self.a) + self.obs.d;
+        let m = self.p * z;
+        let signal_var = z.dot(&m);
+        let f = signal_var + h;
+        let f_inf = if self.diffuse {
+            z.dot(&(self.p_inf * z))
+        } else {
+            0.0
+        };
+        let y = match y {
+            Some(v) if !v.is_nan() => v,
+            _ => {
+                let infinite = f_inf > DIFFUSE_TOL;
+                return Step {
+                    kind: StepKind::Missing,
+                    predicted,
+                    predicted_var: if infinite { f64::INFINITY } else { f },
+                    innovation: f64::NAN,
+                    standardized: f64::NAN,
+                    estimate: predicted,
+                    estimate_var: if infinite { f64::INFINITY } else { signal_var },
+                    loglik: 0.0,
+                };
+            }
+        };
+        let v = y - predicted;
+        if f_inf > DIFFUSE_TOL {
+            return self.update_diffuse(v, predicted, m, f, f_inf);
+        }
+        if f.is_nan() || f <= 0.0 {
+            return Step {
+                kind: StepKind::Degenerate,
+                predicted,
+                predicted_var: f,
+                innovation: v,
+                standardized: f64::NAN,
+                estimate: predicted,
+                estimate_var: signal_var,
+                loglik: if v == 0.0 { 0.0 } else { f64::NEG_INFINITY },
+            };
+        }
+        let k = m / f;
+        self.a += k * v;
+        // Joseph form: (I - k z') P (I - k z')' + k h k'. Costs a few more flops than P - k m', but cannot lose
+        // positive semi-definiteness to rounding.
+        let ikz = SMatrix::<f64, N, N>::identity() - k * z.transpose();
+        let p = ikz * self.p * ikz.transpose() + k * k.transpose() * h;
+        self.p = if N > 1 { (p + p.transpose()) * 0.5 } else { p };
+        if self.diffuse {
+            // Diffuse states not seen by this observation (F_inf = 0) stay diffuse.
+            self.end_diffuse_if_done();
+        }
+        let estimate_var = if self.diffuse && z.dot(&(self.p_inf * z)) > DIFFUSE_TOL {
+            f64::INFINITY
+        } else {
+            z.dot(&(self.p * z))
+        };
+        Step {
+            kind: StepKind::Observed,
+            predicted,
+            predicted_var: f,
+            innovation: v,
+            standardized: v / f.sqrt(),
+            estimate: z.dot(&self.a) + self.obs.d,
+            estimate_var,
+            loglik: -0.5 * (LN_2PI + f.ln() + v * v / f),
+        }
+    }
+
+    fn update_diffuse(
+        &mut self,
+        v: f64,
+        predicted: f64,
+        m_star: SVector<f64, N>,
+        f_star: f64,
+        f_inf: f64,
+    ) -> Step {
+        let z = self.obs.z;
+        let m_inf = self.p_inf * z;
+        let k_inf = m_inf / f_inf;
+        self.a += k_inf * v;
+        // Durbin & Koopman (2012), eq. 5.12 in univariate form.
+        let p = self.p + k_inf * k_inf.transpose() * f_star
+            - (m_star * k_inf.transpose() + k_inf * m_star.transpose());
+        self.p = (p + p.transpose()) * 0.5;
+        let pi = self.p_inf - m_inf * k_inf.transpose();
+        self.p_inf = (pi + pi.transpose()) * 0.5;
+        self.end_diffuse_if_done();
+        let signal_inf = if self.diffuse {
+            z.dot(&(self.p_inf * z))
+        } else {
+            0.0
+        };
+        Step {
+            kind: StepKind::Diffuse,
+            predicted,
+            predicted_var: f64::INFINITY,
+            innovation: v,
+            standardized: f64::NAN,
+            estimate: z.dot(&self.a) + self.obs.d,
+            estimate_var: if signal_inf > DIFFUSE_TOL {
+                f64::INFINITY
+            } else {
+                z.dot(&(self.p * z)).max(0.0)
+            },
+            loglik: -0.5 * (LN_2PI + f_inf.ln()),
+        }
+    }
+
+    fn end_diffuse_if_done(&mut self) {
+        if self.p_inf.abs().max() <= DIFFUSE_TOL {
+            self.p_inf = SMatrix::zeros();
+            self.diffuse = false;
+        }
+    }
+
+    /// Forecast `dt` seconds past the last sample (or from the prior before any sample), without changing state.
+    pub fn forecast(&self, dt: f64) -> Forecast {
+        let tr = if self.started {
+            self.model.transition(dt)
+        } else {
+            Transition::identity()
+        };
+        let z = self.obs.z;
+        let a = tr.t * self.a + tr.c;
+        let p = tr.t * self.p * tr.t.transpose() + tr.q;
+        let diffuse_var = if self.diffuse {
+            z.dot(&(tr.t * self.p_inf * tr.t.transpose() * z))
+        } else {
+            0.0
+        };
+        let signal_var = if diffuse_var > DIFFUSE_TOL {
+            f64::INFINITY
+        } else {
+            z.dot(&(p * z))
+        };
+        Forecast {
+            signal: z.dot(&a) + self.obs.d,
+            signal_var,
+            obs_var: signal_var + self.obs.h,
+        }
+    }
+
+    /// Filtered state mean and covariance (proper part), for tests and checkpoints.
+    pub fn state(&self) -> (SVector<f64, N>, SMatrix<f64, N, N>) {
+        (self.a, self.p)
+    }
+}
+
+/// A Kalman filter for any configured model, chosen at run time.
+// Variants differ in size (1 to 4 states); boxing would add a pointer chase per sample for no gain.
+#[allow(clippy::large_enum_variant)]
+#[derive(Debug, Clone)]
+pub enum Filter {
+    Level(Kalman<Level, 1>),
+    Lag(Kalman<Lag, 1>),
+    Trend(Kalman<Trend, 2>),
+    Arma1(Kalman<Arma<1>, 1>),
+    Arma2(Kalman<Arma<2>, 2>),
+    Arma3(Kalman<Arma<3>, 3>),
+    Arma4(Kalman<Arma<4>, 4>),
+}
+
+macro_rules! each_filter {
+    ($self:expr, $k:ident => $body:expr) => {
+        match $self {
+            Filter::Level($k) => $body,
+            Filter::Lag($k) => $body,
+            Filter::Trend($k) => $body,
+            Filter::Arma1($k) => $body,
+            Filter::Arma2($k) => $body,
+            Filter::Arma3($k) => $body,
+            Filter::Arma4($k) => $body,
+        }
+    };
+}
+
+impl Filter {
+    /// Realises a validated model in state-space form.
+    pub fn new(spec: &ModelSpec) -> Result<Self, ModelError> {
+        spec.validate()?;
+        let interval = spec.interval;
+        Ok(match &spec.params {
+            ModelParams::Level { obs_var, level_var } => Filter::Level(Kalman::new(Level {
+                obs_var: *obs_var,
+                level_rate: level_var / interval,
+            })),
+            ModelParams::Lag {
+                mean,
+                tau,
+                state_var,
+                obs_var,
+            } => Filter::Lag(Kalman::new(Lag {
+                mean: *mean,
+                tau: *tau,
+                stationary_var: lag_stationary_var(*state_var, *tau, interval),
+                obs_var: *obs_var,
+            })),
+            ModelParams::Trend {
+                obs_var,
+                level_var,
+                slope_var,
+            } => Filter::Trend(Kalman::new(Trend {
+                obs_var: *obs_var,
+                level_var: *level_var,
+                slope_var: *slope_var,
+                interval,
+            })),
+            ModelParams::Arma { mean, ar, ma, var } => {
+                let (m, v) = (*mean, *var);
+                match ar.len().max(ma.len() + 1) {
+                    1 => Filter::Arma1(Kalman::new(Arma::new(m, ar, ma, v, interval)?)),
+                    2 => Filter::Arma2(Kalman::new(Arma::new(m, ar, ma, v, interval)?)),
+                    3 => Filter::Arma3(Kalman::new(Arma::new(m, ar, ma, v, interval)?)),
+                    _ => Filter::Arma4(Kalman::new(Arma::new(m, ar, ma, v, interval)?)),
+                }
+            }
+        })
+    }
+
+    #[inline]
+    pub fn step(&mut self, dt: f64, y: Option<f64>) -> Step {
+        each_filter!(self, k => k.step(dt, y))
+    }
+
+    pub fn forecast(&self, dt: f64) -> Forecast {
+        each_filter!(self, k => k.forecast(dt))
+    }
+
+    pub fn is_diffuse(&self) -> bool {
+        each_filter!(self, k => k.is_diffuse())
+    }
+}
+
+/// Stationary variance of a `lag` state from its per-interval noise: q / (1 - exp(-2 interval / tau)).
+pub fn lag_stationary_var(state_var: f64, tau: f64, interval: f64) -> f64 {
+    state_var / -(-2.0 * interval / tau).exp_m1()
+}
+
+/// Log-likelihood summary of one pass over a series.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Likelihood {
+    pub loglik: f64,
+    /// Values present.
+    pub n_obs: usize,
+    /// Values consumed by the diffuse part of the filter.
+    pub n_diffuse: usize,
+}
+
+/// Runs a fresh filter over a whole series (times in seconds, NaN = missing) and sums the log-likelihood.
+/// `visit` sees every step, for callers that keep innovations or estimates.
+pub fn run<F: FnMut(usize, &Step)>(
+    spec: &ModelSpec,
+    times: &[f64],
+    values: &[f64],
+    mut visit: F,
+) -> Result<Likelihood, ModelError> {
+    let mut filter = Filter::new(spec)?;
+    let mut lik = Likelihood {
+        loglik: 0.0,
+        n_obs: 0,
+        n_diffuse: 0,
+    };
+    let mut prev = times.first().copied().unwrap_or(0.0);
+    for (i, (&t, &y)) in times.iter().zip(values).enumerate() {
+        let step = filter.step(t - prev, Some(y));
+        prev = t;
+        lik.loglik += step.loglik;
+        match step.kind {
+            StepKind::Missing => {}
+            StepKind::Diffuse => {
+                lik.n_obs += 1;
+                lik.n_diffuse += 1;
+            }
+            StepKind::Observed | StepKind::Degenerate => lik.n_obs += 1,
+        }
+        visit(i, &step);
+    }
+    Ok(lik)
+}
+
+/// Only the log-likelihood: the estimator's inner loop.
+pub fn loglik(spec: &ModelSpec, times: &[f64], values: &[f64]) -> Result<f64, ModelError> {
+    run(spec, times, values, |_, _| {}).map(|l| l.loglik)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use approx::assert_relative_eq;
+    use std::f64::consts::PI;
+
+    fn level(obs: f64, lvl: f64) -> ModelSpec {
+        ModelSpec {
+            interval: 1.0,
+            params: ModelParams::Level {
+                obs_var: obs,
+                level_var: lvl,
+            },
+        }
+    }
+
+    #[test]
+    fn ln_2pi_is_right() {
+        assert_relative_eq!(LN_2PI, (2.0 * PI).ln(), max_relative = 1e-15);
+    }
+
+    #[test]
+    fn local_level_first_steps_are_the_textbook_ones() {
+        // Durbin & Koopman (2012) ch. 5 / REFERENCES.md: exact diffuse local level gives a2 = y1, P2 = eps + eta.
+        let mut f = Filter::new(&level(15099.0, 1469.1)).unwrap();
+        let s1 = f.step(0.0, Some(1120.0));
+        assert_eq!(s1.kind, StepKind::Diffuse);
+        assert_relative_eq!(s1.loglik, -0.5 * LN_2PI, max_relative = 1e-15);
+        assert_eq!(s1.estimate, 1120.0);
+        let s2 = f.step(1.0, Some(1160.0));
+        assert_eq!(s2.kind, StepKind::Observed);
+        assert_relative_eq!(s2.predicted, 1120.0);
+        assert_relative_eq!(
+            s2.predicted_var,
+            15099.0 + 15099.0 + 1469.1,
+            max_relative = 1e-12
+        );
+    }
+
+    #[test]
+    fn missing_is_predict_only() {
+        let mut f = Filter::new(&level(1.0, 0.5)).unwrap();
+        f.step(0.0, Some(3.0));
+        let before = f.forecast(2.0);
+        f.step(1.0, None);
+        let s = f.step(1.0, Some(f64::NAN));
+        assert_eq!(s.kind, StepKind::Missing);
+        assert_eq!(s.loglik, 0.0);
+        assert_relative_eq!(s.estimate, before.signal);
+        assert_relative_eq!(s.estimate_var, before.signal_var, max_relative = 1e-12);
+    }
+
+    #[test]
+    fn trend_diffuse_ends_after_two_values() {
+        let spec = ModelSpec {
+            interval: 1.0,
+            params: ModelParams::Trend {
+                obs_var: 1.0,
+                level_var: 0.1,
+                slope_var: 0.01,
+            },
+        };
+        let mut f = Filter::new(&spec).unwrap();
+        assert_eq!(f.step(0.0, Some(1.0)).kind, StepKind::Diffuse);
+        assert!(f.is_diffuse());
+        assert_eq!(f.step(1.0, Some(2.0)).kind, StepKind::Diffuse);
+        assert!(!f.is_diffuse());
+        let s = f.step(1.0, Some(3.0));
+        assert_eq!(s.kind, StepKind::Observed);
+        // Two exact points on a line: the trend forecasts the third on it.
+        assert_relative_eq!(s.predicted, 3.0, max_relative = 1e-12);
+    }
+}
