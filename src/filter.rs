@@ -190,7 +190,9 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         let estimate_var = if self.diffuse && z.dot(&(self.p_inf * z)) > DIFFUSE_TOL {
             f64::INFINITY
         } else {
-            z.dot(&(self.p * z))
+            // A state the observation pins down exactly (ARMA has no measurement noise) has a variance of zero
+            // up to rounding; never report a negative one.
+            z.dot(&(self.p * z)).max(0.0)
         };
         Step {
             kind: StepKind::Observed,
@@ -366,6 +368,15 @@ impl Filter {
 
     pub fn is_diffuse(&self) -> bool {
         each_filter!(self, k => k.is_diffuse())
+    }
+
+    /// Filtered state mean and covariance (proper part, row-major), for diagnostics and checkpoints.
+    /// Allocates; not for the per-sample path.
+    pub fn snapshot(&self) -> (Vec<f64>, Vec<f64>) {
+        each_filter!(self, k => {
+            let (a, p) = k.state();
+            (a.iter().copied().collect(), p.transpose().iter().copied().collect())
+        })
     }
 }
 
