@@ -591,13 +591,25 @@ pub fn compare(data: &Data, kinds: &[ModelKind]) -> Result<Comparison, EstimateE
     let common_skip = kinds.iter().map(|k| k.n_diffuse()).max().unwrap_or(0);
     let mut fits = Vec::with_capacity(kinds.len());
     for &kind in kinds {
-        let mut f = fit(data, kind, None)?;
-        if let Some(spec) = f.spec.clone() {
-            let again = evaluate(&spec, data, common_skip)?;
-            f.loglik_common = again.loglik_common;
-            f.aic_common = again.aic_common;
-            f.bic_common = again.bic_common;
-        }
+        // A problem with the data stops the comparison; a problem with one candidate only marks that candidate,
+        // so the engineer still sees the others.
+        let attempt = fit(data, kind, None).and_then(|mut f| {
+            if let Some(spec) = f.spec.clone() {
+                let again = evaluate(&spec, data, common_skip)?;
+                f.loglik_common = again.loglik_common;
+                f.aic_common = again.aic_common;
+                f.bic_common = again.bic_common;
+            }
+            Ok(f)
+        });
+        let f = match attempt {
+            Ok(f) => f,
+            Err(e @ EstimateError::Model(_)) => Fit {
+                failure: Some(e.to_string()),
+                ..unconverged(kind, data, 0)
+            },
+            Err(e) => return Err(e),
+        };
         fits.push(f);
     }
     fits.sort_by(|a, b| match (a.converged, b.converged) {

@@ -1,1 +1,305 @@
-fn main() {}
+//! The `gaugewise` command line: the offline bench over recorded histories.
+//!
+//! `fit` ranks candidate models for one tag's history and can print the winner as config; `replay` runs a config
+//! over a history through the same per-sample path the daemon uses. All the work is in the library (`estimate`,
+//! `report`, `replay`); this file parses arguments, reads files and maps failures to exit codes: 2 for bad input
+//! of any kind (files, columns, values, config, options), 1 for anything else (e.g. output that cannot be written).
+//! Every error is one line on stderr, naming the file, row, column or key as the library's errors do.
+
+use anyhow::{anyhow, Context};
+use clap::{Parser, Subcommand, ValueEnum};
+use gaugewise::config::Config;
+use gaugewise::estimate::{self, Data};
+use gaugewise::history::{self, Series, TimeBase};
+use gaugewise::replay::{self, Replay};
+use gaugewise::report;
+use std::io::{self, Write};
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+/// The demo history `fit` uses without `--input`, built in so a fresh checkout works with no files at hand.
+const EXAMPLE_CSV: &str = include_str!("../config/examples/vessel_temperature.csv");
+const EXAMPLE_NAME: &str = "bundled example vessel_temperature.csv";
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "gaugewise",
+    version,
+    about = "Kalman-filtered sensor signals: fit models to tag histories and replay them"
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Fit candidate models to one tag's history and rank them.
+    #[command(
+        long_about = "Fit candidate models to one tag's history by maximum likelihood and rank them by \
+        AIC on a common sample.\n\nWithout --input the bundled example history (config/examples/\
+        vessel_temperature.csv, a vessel temperature TT-101) is used, so `gaugewise fit` works out of the box.\n\n\
+        The CSV has a header row; empty cells, NaN, null and NA are missing values; times are epoch seconds, \
+        epoch milliseconds or RFC 3339."
+    )]
+    Fit(FitArgs),
+    /// Run a config over a history through the streaming filter, one output row per sample.
+    #[command(
+        long_about = "Run a config over a history through the streaming filter, exactly as the daemon \
+        would process the samples: every value column (or every channel of a long time,channel,value file) is a \
+        channel, given the model its name matches in the config, and samples are fed in time order.\n\n\
+        Output CSV columns: time,channel,raw,estimate,std,innovation,std_innovation,status. `time` is in seconds \
+        (epoch seconds whatever the input's form, or the sample index without a time column). Empty cells mean no \
+        value; std is `inf` while a diffuse model is still initialising. A summary goes to stderr."
+    )]
+    Replay(ReplayArgs),
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum Format {
+    Table,
+    Json,
+}
+
+#[derive(Debug, clap::Args)]
+struct FitArgs {
+    /// History CSV (wide or long format); default: the bundled example.
+    #[arg(long, value_name = "FILE.csv")]
+    input: Option<PathBuf>,
+    /// Value column (or channel of a long file) to fit; needed when there are several.
+    #[arg(long, value_name = "NAME")]
+    column: Option<String>,
+    /// Time column; default: the one named time, timestamp or t (any case), else the row index.
+    #[arg(long, value_name = "NAME")]
+    time_column: Option<String>,
+    /// Candidate models, comma-separated: level, lag, trend, arma(p,q) with p and q in 0..=3.
+    #[arg(long, value_name = "LIST", default_value = "level,lag,trend,arma(1,1)")]
+    models: String,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    format: Format,
+    /// Also print the best model as a [[channels.override]] block to paste into a config.
+    #[arg(long)]
+    emit_config: bool,
+}
+
+#[derive(Debug, clap::Args)]
+struct ReplayArgs {
+    /// Channel configuration (TOML), e.g. config/plant.toml.
+    #[arg(long, value_name = "FILE.toml")]
+    config: PathBuf,
+    /// History CSV (wide or long format).
+    #[arg(long, value_name = "FILE.csv")]
+    input: PathBuf,
+    /// Output CSV; default: stdout.
+    #[arg(long, value_name = "FILE.csv")]
+    output: Option<PathBuf>,
+}
+
+/// A failure and the exit code it earns.
+struct Failure {
+    code: u8,
+    error: anyhow::Error,
+}
+
+/// Bad input: the user can fix it by changing a file or an option.
+fn input<E: Into<anyhow::Error>>(e: E) -> Failure {
+    Failure {
+        code: 2,
+        error: e.into(),
+    }
+}
+
+fn other<E: Into<anyhow::Error>>(e: E) -> Failure {
+    Failure {
+        code: 1,
+        error: e.into(),
+    }
+}
+
+fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) if !e.use_stderr() => {
+            // --help and --version: print as clap means them to be.
+            let _ = e.print();
+            return ExitCode::SUCCESS;
+        }
+        Err(e) => {
+            eprintln!("error: {} (see gaugewise --help)", usage_error(&e));
+            return ExitCode::from(2);
+        }
+    };
+    let result = match cli.command {
+        Command::Fit(args) => fit(&args),
+        Command::Replay(args) => replay(&args),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(f) if is_broken_pipe(&f.error) => {
+            // The reader (e.g. `head`) has what it wanted; that is not a failure of ours.
+            ExitCode::SUCCESS
+        }
+        Err(f) => {
+            eprintln!("error: {}", one_line(&f.error));
+            ExitCode::from(f.code)
+        }
+    }
+}
+
+/// clap's usage errors run to several lines (message, hints, usage); this keeps what says what is wrong.
+fn usage_error(e: &clap::Error) -> String {
+    if e.kind() == clap::error::ErrorKind::DisplayHelpOnMissingArgumentOrSubcommand {
+        return "no command given: use `gaugewise fit` or `gaugewise replay`".to_string();
+    }
+    let text = e.render().to_string();
+    let mut out = String::new();
+    for line in text.lines().map(str::trim) {
+        if line.starts_with("Usage:") || line.starts_with("For more information") {
+            break;
+        }
+        if line.is_empty() {
+            continue;
+        }
+        if !out.is_empty() {
+            out.push_str(if out.ends_with(':') { " " } else { "; " });
+        }
+        out.push_str(line.strip_prefix("error: ").unwrap_or(line));
+    }
+    out
+}
+
+/// The error and its causes on one line. Our library errors already print their source in their own message
+/// (thiserror `{source}` or `transparent`), so a cause whose text is already there is not repeated.
+fn one_line(e: &anyhow::Error) -> String {
+    let mut message = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if message.contains(&text) {
+            continue;
+        }
+        if !message.is_empty() {
+            message.push_str(": ");
+        }
+        message.push_str(&text);
+    }
+    message.replace(['\n', '\r'], " ")
+}
+
+fn is_broken_pipe(e: &anyhow::Error) -> bool {
+    e.chain().any(|c| {
+        c.downcast_ref::<io::Error>()
+            .is_some_and(|io| io.kind() == io::ErrorKind::BrokenPipe)
+            || c.downcast_ref::<csv::Error>().is_some_and(|csv| {
+                matches!(csv.kind(), csv::ErrorKind::Io(io) if io.kind() == io::ErrorKind::BrokenPipe)
+            })
+    })
+}
+
+fn fit(args: &FitArgs) -> Result<(), Failure> {
+    let kinds = report::parse_model_list(&args.models).map_err(input)?;
+    let columns = args.column.clone().map(|c| vec![c]);
+    let (series, source) = match &args.input {
+        Some(path) => (
+            history::read_path(path, args.time_column.as_deref(), columns.as_deref())
+                .map_err(input)?
+                .0,
+            path.display().to_string(),
+        ),
+        None => (
+            history::read_any(
+                EXAMPLE_CSV.as_bytes(),
+                EXAMPLE_NAME,
+                args.time_column.as_deref(),
+                columns.as_deref(),
+            )
+            .map_err(input)?
+            .0,
+            EXAMPLE_NAME.to_string(),
+        ),
+    };
+    let series = report::single_series(series, &source).map_err(input)?;
+    let interval = report::interval_of(&series)
+        .map_err(|e| input(anyhow!(e).context(describe(&source, &series))))?;
+    let data = Data {
+        times: &series.times,
+        values: &series.values,
+        interval,
+    };
+    let cmp = estimate::compare(&data, &kinds)
+        .map_err(|e| input(anyhow!(e).context(describe(&source, &series))))?;
+
+    let config = args.emit_config.then(|| {
+        cmp.best()
+            .and_then(|b| b.spec.as_ref())
+            .map(|spec| report::emit_config(spec, &series.name))
+    });
+    let stdout = io::stdout();
+    let mut out = io::BufWriter::new(stdout.lock());
+    match args.format {
+        Format::Json => {
+            let doc = report::to_json(&cmp, interval, config.clone());
+            serde_json::to_writer(&mut out, &doc).map_err(other)?;
+            writeln!(out).map_err(other)?;
+        }
+        Format::Table => {
+            out.write_all(report::table(&cmp, interval, &series.name).as_bytes())
+                .map_err(other)?;
+            if let Some(Some(block)) = &config {
+                writeln!(out).map_err(other)?;
+                out.write_all(block.as_bytes()).map_err(other)?;
+            }
+        }
+    }
+    out.flush().map_err(other)?;
+    if config == Some(None) {
+        return Err(other(anyhow!(
+            "no candidate model converged for '{}', so there is no config to emit",
+            series.name
+        )));
+    }
+    Ok(())
+}
+
+/// Which series of which file an estimation error is about.
+fn describe(source: &str, series: &Series) -> String {
+    format!("{source}, column '{}'", series.name)
+}
+
+fn replay(args: &ReplayArgs) -> Result<(), Failure> {
+    let config = Config::load(&args.config).map_err(input)?;
+    let (series, base) = history::read_path(&args.input, None, None).map_err(input)?;
+    let run = Replay::new(&config.channels, &series).map_err(|e| {
+        input(anyhow!(e).context(format!(
+            "{} with {}",
+            args.config.display(),
+            args.input.display()
+        )))
+    })?;
+    let summary = match &args.output {
+        Some(path) => {
+            let file = std::fs::File::create(path)
+                .with_context(|| format!("cannot create {}", path.display()))
+                .map_err(other)?;
+            write_rows(run, io::BufWriter::new(file), path)?
+        }
+        None => write_rows(
+            run,
+            io::BufWriter::new(io::stdout().lock()),
+            Path::new("stdout"),
+        )?,
+    };
+    let index_note = if base == TimeBase::Index {
+        " (no time column: times are the row index)"
+    } else {
+        ""
+    };
+    eprintln!("{summary}{index_note}");
+    Ok(())
+}
+
+fn write_rows<W: Write>(run: Replay, out: W, path: &Path) -> Result<replay::Summary, Failure> {
+    replay::write_csv(run, out)
+        .with_context(|| format!("cannot write {}", path.display()))
+        .map_err(other)
+}

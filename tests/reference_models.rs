@@ -112,14 +112,6 @@ fn check_fixed(label: &str, spec: &ModelSpec, y: &[f64], fixed: &Value, tol: f64
     assert_eq!(lik.n_diffuse, n_diffuse, "{label} diffuse steps");
 }
 
-fn with_missing(y: &[f64], missing: &Value) -> Vec<f64> {
-    let mut y = y.to_vec();
-    for i in missing.as_array().unwrap() {
-        y[i.as_u64().unwrap() as usize] = f64::NAN;
-    }
-    y
-}
-
 #[test]
 fn arma_filter_at_true_parameters_matches_sarimax() {
     let fx = fixture("arma.json");
