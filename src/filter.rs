@@ -14,6 +14,10 @@
 //!   initialisation.
 //! - The covariance update is Joseph's form, symmetrised, so P stays symmetric positive semi-definite over millions
 //!   of steps.
+//! - Steady state: with a constant dt and no missing values, the covariance of a time-invariant model converges.
+//!   Once the predicted covariance repeats to within rounding, the gain, F and ln F are frozen and a step costs
+//!   only the mean update (as statsmodels' steady-state mode). Any missing value, change of dt or diffuse state
+//!   leaves that mode and runs the full recursion again, so the results are those of the full filter to ~1e-14.
 
 use crate::model::{
     Arma, Lag, Level, ModelError, ModelParams, ModelSpec, Observation, Prior, StateSpace,
@@ -80,6 +84,20 @@ pub struct Kalman<M, const N: usize> {
     started: bool,
     cached_dt: f64,
     cached: Transition<N>,
+    /// Predicted covariance of the previous observed step at the same dt, to detect convergence.
+    p_pred_prev: SMatrix<f64, N, N>,
+    steady: Option<Steady<N>>,
+}
+
+/// Frozen quantities of a converged filter (see the module notes).
+#[derive(Debug, Clone, Copy)]
+struct Steady<const N: usize> {
+    gain: SVector<f64, N>,
+    f: f64,
+    inv_sqrt_f: f64,
+    /// -0.5 (ln 2pi + ln F)
+    ll_const: f64,
+    estimate_var: f64,
 }
 
 impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
@@ -97,6 +115,8 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             started: false,
             cached_dt: 0.0,
             cached,
+            p_pred_prev: SMatrix::repeat(f64::NAN),
+            steady: None,
         }
     }
 
@@ -129,6 +149,13 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
 
     /// One sample `dt` seconds after the previous one (ignored for the first sample); `None` or NaN is missing.
     pub fn step(&mut self, dt: f64, y: Option<f64>) -> Step {
+        if let (Some(st), Some(y)) = (self.steady, y) {
+            if dt == self.cached_dt && !y.is_nan() {
+                return self.step_steady(&st, y);
+            }
+        }
+        self.steady = None;
+        let same_dt = self.started && dt == self.cached_dt;
         if self.started {
             self.predict(dt);
         }
@@ -147,6 +174,8 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         let y = match y {
             Some(v) if !v.is_nan() => v,
             _ => {
+                // Convergence is judged only between consecutive observed steps.
+                self.p_pred_prev = SMatrix::repeat(f64::NAN);
                 let infinite = f_inf > DIFFUSE_TOL;
                 return Step {
                     kind: StepKind::Missing,
@@ -177,6 +206,19 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             };
         }
         let k = m / f;
+        if same_dt && !self.diffuse {
+            let tol = 1e-12 * self.p.abs().max();
+            if (self.p - self.p_pred_prev).abs().max() <= tol {
+                self.steady = Some(Steady {
+                    gain: k,
+                    f,
+                    inv_sqrt_f: 1.0 / f.sqrt(),
+                    ll_const: -0.5 * (LN_2PI + f.ln()),
+                    estimate_var: 0.0,
+                });
+            }
+        }
+        self.p_pred_prev = self.p;
         self.a += k * v;
         // Joseph form: (I - k z') P (I - k z')' + k h k'. Costs a few more flops than P - k m', but cannot lose
         // positive semi-definiteness to rounding.
@@ -194,6 +236,9 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             // up to rounding; never report a negative one.
             z.dot(&(self.p * z)).max(0.0)
         };
+        if let Some(st) = self.steady.as_mut() {
+            st.estimate_var = estimate_var;
+        }
         Step {
             kind: StepKind::Observed,
             predicted,
@@ -203,6 +248,28 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             estimate: z.dot(&self.a) + self.obs.d,
             estimate_var,
             loglik: -0.5 * (LN_2PI + f.ln() + v * v / f),
+        }
+    }
+
+    /// A step of the converged filter: same dt as before, value present. P is unchanged by construction.
+    #[inline]
+    fn step_steady(&mut self, st: &Steady<N>, y: f64) -> Step {
+        let tr = &self.cached;
+        self.a = tr.t * self.a + tr.c;
+        let z = self.obs.z;
+        let predicted = z.dot(&self.a) + self.obs.d;
+        let v = y - predicted;
+        self.a += st.gain * v;
+        let standardized = v * st.inv_sqrt_f;
+        Step {
+            kind: StepKind::Observed,
+            predicted,
+            predicted_var: st.f,
+            innovation: v,
+            standardized,
+            estimate: z.dot(&self.a) + self.obs.d,
+            estimate_var: st.estimate_var,
+            loglik: st.ll_const - 0.5 * standardized * standardized,
         }
     }
 
@@ -437,6 +504,52 @@ mod tests {
     use super::*;
     use approx::assert_relative_eq;
     use std::f64::consts::PI;
+
+    /// The steady-state shortcut engages on regular data, leaves on a gap, and matches the textbook scalar
+    /// recursion (D&K 2012, eq. 2.15) computed in full at every step.
+    #[test]
+    fn steady_state_matches_full_recursion() {
+        let (h, q) = (2.0, 0.3);
+        let mut k = Kalman::new(Level {
+            obs_var: h,
+            level_rate: q,
+        });
+        let (mut a, mut p) = (0.0f64, 0.0f64);
+        let mut engaged = 0;
+        for i in 0..5000usize {
+            let y = (i as f64 * 0.01).sin() * 10.0 + ((i * 7919) % 13) as f64 * 0.1;
+            let missing = i % 1000 == 500;
+            let s = k.step(1.0, (!missing).then_some(y));
+            engaged += k.steady.is_some() as usize;
+            if i == 0 {
+                (a, p) = (y, h); // exact diffuse start: a_1|1 = y_1, P = h
+                continue;
+            }
+            p += q;
+            if missing {
+                assert_eq!(s.kind, StepKind::Missing);
+                assert!(k.steady.is_none());
+                continue;
+            }
+            let f = p + h;
+            let v = y - a;
+            assert_relative_eq!(s.innovation, v, max_relative = 1e-12, epsilon = 1e-10);
+            assert_relative_eq!(s.predicted_var, f, max_relative = 1e-12);
+            assert_relative_eq!(
+                s.loglik,
+                -0.5 * (LN_2PI + f.ln() + v * v / f),
+                max_relative = 1e-12
+            );
+            a += p / f * v;
+            p -= p * p / f;
+            assert_relative_eq!(s.estimate, a, max_relative = 1e-12, epsilon = 1e-10);
+            assert_relative_eq!(s.estimate_var, p, max_relative = 1e-12);
+        }
+        assert!(
+            engaged > 4500,
+            "steady state engaged on only {engaged} of 5000 steps"
+        );
+    }
 
     fn level(obs: f64, lvl: f64) -> ModelSpec {
         ModelSpec {

@@ -369,9 +369,11 @@ pub struct Lag {
 
 impl StateSpace<1> for Lag {
     fn transition(&self, dt: f64) -> Transition<1> {
-        let phi = (-dt / self.tau).exp();
-        // 1 - phi^2 via expm1 keeps precision for dt << tau, where the state noise is tiny.
-        let q = self.stationary_var * -(-2.0 * dt / self.tau).exp_m1();
+        // One expm1 gives both: phi = 1 + em, and 1 - phi^2 = -em (2 + em) without the cancellation that
+        // 1 - phi^2 suffers for dt << tau, where the state noise is tiny.
+        let em = (-dt / self.tau).exp_m1();
+        let phi = 1.0 + em;
+        let q = self.stationary_var * (-em * (2.0 + em));
         Transition {
             t: SMatrix::from_element(phi),
             c: SVector::zeros(),
