@@ -29,15 +29,16 @@ pub const BOUNDARY_FRACTION: f64 = 1e-6;
 /// Largest gradient norm (of the mean negative log-likelihood per value, unconstrained space) accepted as converged.
 const GRADIENT_TOLERANCE: f64 = 1e-4;
 /// Quasi-Newton iterations each starting point gets before the most promising one is polished.
-const SCREEN_ITERATIONS: u64 = 4;
+const SCREEN_ITERATIONS: u64 = 6;
 /// Iteration budget of the final optimisation.
 const POLISH_ITERATIONS: u64 = 300;
-/// Smallest variance on the standardised scale (series variance 1). An optimiser walking ln(variance) towards
-/// minus infinity would spend hundreds of evaluations getting there; below the floor the cost is flat and it stops.
-/// The floor must be far below anything the likelihood can see: a slope variance acts through the integrated
-/// slope, whose variance grows like n^3 times it, so e^-60 = 8.8e-27 keeps n^3 x floor below 1e-5 up to n = 1e7.
-/// A variance at the floor is reported as at its zero boundary.
-const LN_VARIANCE_FLOOR: f64 = -60.0;
+/// Largest log-ratio between two variances the optimiser can express (e^60 = 1.1e26). Beyond it the cost is flat
+/// and the smaller variance counts as zero. The limit must be far beyond anything the likelihood can see: a slope
+/// variance acts through the integrated slope, whose variance grows like n^3 times it, so a ratio of e^-60 stays
+/// invisible (n^3 e^-60 < 1e-5) up to n = 1e7.
+const LN_RATIO_LIMIT: f64 = 60.0;
+/// ln(2 pi)
+const LN_2PI: f64 = 1.837_877_066_409_345_3;
 /// Cost returned for parameters the model refuses: large but finite so line searches stay well defined.
 const REFUSED_COST: f64 = 1e10;
 
@@ -156,28 +157,45 @@ fn logit(p: f64) -> f64 {
     (p / (1.0 - p)).ln()
 }
 
+/// Variance shares from log-ratios to the first variance: `[1, e^x1, e^x2, ...] / sum`. Clamping the log-ratios
+/// makes the cost flat beyond e^-60, so a variance heading to zero stops there instead of walking to minus
+/// infinity, and is reported at its zero boundary.
+fn shares<const M: usize, const K: usize>(x: [f64; M]) -> [f64; K] {
+    debug_assert_eq!(K, M + 1);
+    let mut w = [1.0; K];
+    for (wi, xi) in w[1..].iter_mut().zip(x) {
+        *wi = xi.clamp(-LN_RATIO_LIMIT, LN_RATIO_LIMIT).exp();
+    }
+    let total: f64 = w.iter().sum();
+    w.map(|v| v / total)
+}
+
 impl Param {
+    /// The model at `x` with its variances relative: they sum to 1, and the concentrated scale multiplies them.
     fn spec(&self, x: &[f64]) -> ModelSpec {
-        let var = |u: f64| u.max(LN_VARIANCE_FLOOR).exp();
         let params = match self.kind {
-            ModelKind::Level => ModelParams::Level {
-                obs_var: var(x[0]),
-                level_var: var(x[1]),
-            },
+            ModelKind::Level => {
+                let [obs_var, level_var] = shares([x[0]]);
+                ModelParams::Level { obs_var, level_var }
+            }
             ModelKind::Lag => {
                 let phi = logistic(x[1]);
+                let [obs_var, state_var] = shares([x[2]]);
                 ModelParams::Lag {
                     mean: x[0],
                     tau: -self.interval / phi.ln(),
-                    state_var: var(x[2]),
-                    obs_var: var(x[3]),
+                    state_var,
+                    obs_var,
                 }
             }
-            ModelKind::Trend => ModelParams::Trend {
-                obs_var: var(x[0]),
-                level_var: var(x[1]),
-                slope_var: var(x[2]),
-            },
+            ModelKind::Trend => {
+                let [obs_var, level_var, slope_var] = shares([x[0], x[1]]);
+                ModelParams::Trend {
+                    obs_var,
+                    level_var,
+                    slope_var,
+                }
+            }
             ModelKind::Arma { p, q } => {
                 let mut ar = vec![0.0; p];
                 let mut ma = vec![0.0; q];
@@ -187,7 +205,7 @@ impl Param {
                     mean: x[0],
                     ar,
                     ma,
-                    var: var(x[1 + p + q]),
+                    var: 1.0,
                 }
             }
         };
@@ -197,11 +215,18 @@ impl Param {
         }
     }
 
-    /// Inverse of `spec`, for warm starts. None when the model is outside the transforms' range.
+    /// Inverse of `spec` (the scale drops out), for starting points. None when the model is outside the
+    /// transforms' range.
     fn unconstrained(&self, spec: &ModelSpec) -> Option<Vec<f64>> {
-        let ln = |v: f64| if v > 0.0 { Some(v.ln()) } else { None };
+        let ratio = |v: f64, reference: f64| {
+            if v > 0.0 && reference > 0.0 {
+                Some((v / reference).ln())
+            } else {
+                None
+            }
+        };
         match &spec.params {
-            ModelParams::Level { obs_var, level_var } => Some(vec![ln(*obs_var)?, ln(*level_var)?]),
+            ModelParams::Level { obs_var, level_var } => Some(vec![ratio(*level_var, *obs_var)?]),
             ModelParams::Lag {
                 mean,
                 tau,
@@ -212,20 +237,22 @@ impl Param {
                 if !(phi > 0.0 && phi < 1.0) {
                     return None;
                 }
-                Some(vec![*mean, logit(phi), ln(*state_var)?, ln(*obs_var)?])
+                Some(vec![*mean, logit(phi), ratio(*state_var, *obs_var)?])
             }
             ModelParams::Trend {
                 obs_var,
                 level_var,
                 slope_var,
-            } => Some(vec![ln(*obs_var)?, ln(*level_var)?, ln(*slope_var)?]),
-            ModelParams::Arma { mean, ar, ma, var } => {
-                let mut x = vec![0.0; 2 + ar.len() + ma.len()];
+            } => Some(vec![
+                ratio(*level_var, *obs_var)?,
+                ratio(*slope_var, *obs_var)?,
+            ]),
+            ModelParams::Arma { mean, ar, ma, .. } => {
+                let mut x = vec![0.0; 1 + ar.len() + ma.len()];
                 x[0] = *mean;
                 let p = ar.len();
                 transform::unconstrain_stationary(ar, &mut x[1..1 + p]).ok()?;
                 transform::unconstrain_invertible(ma, &mut x[1 + p..1 + p + ma.len()]).ok()?;
-                x[1 + p + ma.len()] = ln(*var)?;
                 Some(x)
             }
         }
@@ -299,6 +326,9 @@ struct Objective<'a> {
     values: &'a [f64],
     n_obs: f64,
     evaluations: std::cell::Cell<usize>,
+    /// The last point evaluated and its cost: argmin asks for the cost and then the gradient at the same point,
+    /// and a forward difference needs that cost again.
+    last: std::cell::RefCell<(Vec<f64>, f64)>,
 }
 
 impl Objective<'_> {
@@ -307,17 +337,56 @@ impl Objective<'_> {
         if x.iter().any(|v| !v.is_finite()) {
             return REFUSED_COST;
         }
-        let spec = self.param.spec(x);
-        match filter::loglik(&spec, self.times, self.values) {
-            Ok(ll) if ll.is_finite() => -ll / self.n_obs,
-            _ => REFUSED_COST,
+        match self.concentrated(x) {
+            Some((ll, _)) => -ll / self.n_obs,
+            None => REFUSED_COST,
         }
+    }
+
+    /// The log-likelihood maximised over the common scale of the variances, and that scale.
+    ///
+    /// Every variance of the model (and so P, F and the stationary prior) is proportional to a common scale s2,
+    /// while innovations and the diffuse part F_inf are not. Filtering with relative variances (F = s2 F~) gives
+    ///   ln L(s2) = sum_diffuse -0.5 (ln 2pi + ln F_inf) - 0.5 sum_obs (ln 2pi + ln s2 + ln F~ + v^2 / (s2 F~)),
+    /// maximised at s2 = mean of v^2 / F~ (Harvey 1989, sec. 3.4; D&K 2012, sec. 2.10.2). The optimiser then
+    /// searches one dimension fewer.
+    fn concentrated(&self, x: &[f64]) -> Option<(f64, f64)> {
+        let spec = self.param.spec(x);
+        let (mut diffuse_ll, mut m, mut sum_s2, mut sum_ln_f) = (0.0, 0usize, 0.0, 0.0);
+        let mut degenerate = false;
+        filter::run(&spec, self.times, self.values, |_, st| match st.kind {
+            StepKind::Observed => {
+                let s2 = st.standardized * st.standardized;
+                m += 1;
+                sum_s2 += s2;
+                // ln F~ recovered from the step's log-density: cheaper than another logarithm per step.
+                sum_ln_f += -2.0 * st.loglik - LN_2PI - s2;
+            }
+            StepKind::Diffuse => diffuse_ll += st.loglik,
+            StepKind::Degenerate => degenerate = true,
+            StepKind::Missing => {}
+        })
+        .ok()?;
+        if degenerate || m == 0 {
+            return None;
+        }
+        let scale = sum_s2 / m as f64;
+        if !(scale > 0.0 && scale.is_finite()) {
+            return None;
+        }
+        let m = m as f64;
+        let ll = diffuse_ll - 0.5 * (m * (LN_2PI + scale.ln() + 1.0) + sum_ln_f);
+        ll.is_finite().then_some((ll, scale))
     }
 
     /// Forward differences: half the evaluations of central ones, accurate to ~1e-8, plenty to steer the
     /// optimiser; the acceptance test uses the central gradient.
     fn forward_gradient(&self, x: &[f64]) -> Vec<f64> {
-        let f0 = self.eval(x);
+        let cached = {
+            let last = self.last.borrow();
+            (last.0.as_slice() == x).then_some(last.1)
+        };
+        let f0 = cached.unwrap_or_else(|| self.eval(x));
         let mut g = vec![0.0; x.len()];
         let mut xp = x.to_vec();
         for i in 0..x.len() {
@@ -350,7 +419,12 @@ impl CostFunction for &Objective<'_> {
     type Param = Vec<f64>;
     type Output = f64;
     fn cost(&self, x: &Self::Param) -> Result<f64, ArgminError> {
-        Ok(self.eval(x))
+        let c = self.eval(x);
+        let mut last = self.last.borrow_mut();
+        last.0.clear();
+        last.0.extend_from_slice(x);
+        last.1 = c;
+        Ok(c)
     }
 }
 
@@ -420,6 +494,7 @@ pub fn fit(data: &Data, kind: ModelKind, warm: Option<&ModelSpec>) -> Result<Fit
         values: &standardised,
         n_obs: n_present as f64,
         evaluations: std::cell::Cell::new(0),
+        last: std::cell::RefCell::new((Vec::new(), f64::NAN)),
     };
     let mut starts: Vec<Vec<f64>> = Vec::new();
     if let Some(w) = warm {
@@ -475,7 +550,10 @@ pub fn fit(data: &Data, kind: ModelKind, warm: Option<&ModelSpec>) -> Result<Fit
     let Some((x, _)) = best else {
         return Ok(unconverged(kind, data, evaluations));
     };
-    let spec = rescale(&param.spec(&x), mean, sd, false);
+    let Some((_, scale)) = obj.concentrated(&x) else {
+        return Ok(unconverged(kind, data, evaluations));
+    };
+    let spec = rescale(&with_scale(&param.spec(&x), scale), mean, sd, false);
     let boundary = boundary_params(&spec, sd * sd);
     let mut result = evaluate(&spec, data, 0)?;
     result.boundary = boundary;
@@ -502,6 +580,34 @@ fn unconverged(kind: ModelKind, data: &Data, evaluations: usize) -> Fit {
         ljung_box: None,
         evaluations,
     }
+}
+
+/// The model with every variance multiplied by `scale` (the concentrated scale of `Objective::concentrated`).
+fn with_scale(spec: &ModelSpec, scale: f64) -> ModelSpec {
+    let mut out = spec.clone();
+    match &mut out.params {
+        ModelParams::Level { obs_var, level_var } => {
+            *obs_var *= scale;
+            *level_var *= scale;
+        }
+        ModelParams::Lag {
+            state_var, obs_var, ..
+        } => {
+            *state_var *= scale;
+            *obs_var *= scale;
+        }
+        ModelParams::Trend {
+            obs_var,
+            level_var,
+            slope_var,
+        } => {
+            *obs_var *= scale;
+            *level_var *= scale;
+            *slope_var *= scale;
+        }
+        ModelParams::Arma { var, .. } => *var *= scale,
+    }
+    out
 }
 
 /// Maps a model between the raw scale and the standardised one (`to_standard`) or back.
@@ -700,6 +806,47 @@ mod tests {
             -0.3819660113,
             max_relative = 1e-9
         );
+    }
+
+    /// The concentrated log-likelihood equals the full one at the concentrated scale, and that scale is the
+    /// maximum over scales: for every model family, diffuse and stationary, with missing values.
+    #[test]
+    fn concentrated_likelihood_is_the_profile_maximum() {
+        let n = 300;
+        let times: Vec<f64> = (0..n).map(|i| i as f64 * 10.0).collect();
+        let values: Vec<f64> = (0..n)
+            .map(|i| {
+                if i % 37 == 5 {
+                    f64::NAN
+                } else {
+                    (i as f64 * 0.05).sin() + ((i * 7919) % 11) as f64 * 0.05
+                }
+            })
+            .collect();
+        for (kind, x) in [
+            (ModelKind::Level, vec![-1.0]),
+            (ModelKind::Lag, vec![0.2, 2.0, 0.5]),
+            (ModelKind::Trend, vec![-2.0, -6.0]),
+            (ModelKind::Arma { p: 1, q: 1 }, vec![0.1, 1.5, -0.3]),
+        ] {
+            let param = Param {
+                kind,
+                interval: 10.0,
+            };
+            let obj = Objective {
+                param,
+                times: &times,
+                values: &values,
+                n_obs: 1.0,
+                evaluations: std::cell::Cell::new(0),
+                last: std::cell::RefCell::new((Vec::new(), f64::NAN)),
+            };
+            let (ll, scale) = obj.concentrated(&x).unwrap();
+            let full =
+                |s: f64| filter::loglik(&with_scale(&param.spec(&x), s), &times, &values).unwrap();
+            assert_relative_eq!(ll, full(scale), max_relative = 1e-12);
+            assert!(full(scale * 1.01) < ll && full(scale * 0.99) < ll, "{kind}");
+        }
     }
 
     #[test]

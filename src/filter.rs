@@ -205,7 +205,10 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
                 loglik: if v == 0.0 { 0.0 } else { f64::NEG_INFINITY },
             };
         }
-        let k = m / f;
+        // One division serves the gain, the standardised innovation and the likelihood (divisions are the slow
+        // part of a 1-state step).
+        let inv_f = 1.0 / f;
+        let k = m * inv_f;
         if same_dt && !self.diffuse {
             let tol = 1e-12 * self.p.abs().max();
             if (self.p - self.p_pred_prev).abs().max() <= tol {
@@ -244,10 +247,10 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             predicted,
             predicted_var: f,
             innovation: v,
-            standardized: v / f.sqrt(),
+            standardized: v * inv_f.sqrt(),
             estimate: z.dot(&self.a) + self.obs.d,
             estimate_var,
-            loglik: -0.5 * (LN_2PI + f.ln() + v * v / f),
+            loglik: -0.5 * (LN_2PI + f.ln() + v * v * inv_f),
         }
     }
 
