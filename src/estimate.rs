@@ -1,11 +1,12 @@
 //! Maximum-likelihood estimation of a model's parameters from a history, and comparison of candidate models.
 //!
 //! The estimator holds no filter of its own: it maps an unconstrained parameter vector to a [`ModelSpec`]
-//! (variances through exp, AR/MA coefficients through the stationarity/invertibility transforms of `transform`)
-//! and asks `filter::loglik` for the exact Gaussian log-likelihood. The optimiser is argmin's L-BFGS on central
-//! finite-difference gradients, started from several points because single starts stop at local optima of ARMA
-//! likelihoods; a start whose quasi-Newton run fails is retried from a Nelder-Mead simplex. A fit is reported only
-//! if the best run ended at a stationary point.
+//! (variance log-ratios, AR/MA coefficients through the stationarity/invertibility transforms of `transform`) and
+//! runs `filter::run` for the exact Gaussian log-likelihood, with the common scale of the variances concentrated
+//! out. The optimiser is argmin's L-BFGS on forward-difference gradients. Several starting points are screened
+//! because single starts stop at local optima of ARMA likelihoods; the most promising is polished, and a run whose
+//! line search fails is retried from a Nelder-Mead simplex. A fit is reported only if it ended where the central
+//! difference gradient is below `GRADIENT_TOLERANCE`.
 //!
 //! Fitting runs on the series standardised to mean 0 and variance 1, so one set of starting values and tolerances
 //! serves every engineering unit; parameters are mapped back and the log-likelihood is re-evaluated on the raw data.
@@ -348,7 +349,7 @@ impl Objective<'_> {
     /// Every variance of the model (and so P, F and the stationary prior) is proportional to a common scale s2,
     /// while innovations and the diffuse part F_inf are not. Filtering with relative variances (F = s2 F~) gives
     ///   ln L(s2) = sum_diffuse -0.5 (ln 2pi + ln F_inf) - 0.5 sum_obs (ln 2pi + ln s2 + ln F~ + v^2 / (s2 F~)),
-    /// maximised at s2 = mean of v^2 / F~ (Harvey 1989, sec. 3.4; D&K 2012, sec. 2.10.2). The optimiser then
+    /// maximised at s2 = mean of v^2 / F~ (D&K 2012, sec. 2.10.2, from memory; checked by a unit test). The optimiser then
     /// searches one dimension fewer.
     fn concentrated(&self, x: &[f64]) -> Option<(f64, f64)> {
         let spec = self.param.spec(x);

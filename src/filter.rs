@@ -129,6 +129,7 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         self.diffuse
     }
 
+    #[inline]
     fn transition(&mut self, dt: f64) -> Transition<N> {
         // Regular sampling repeats the same dt: reuse the matrices instead of recomputing exponentials.
         if dt != self.cached_dt {
@@ -138,6 +139,7 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         self.cached
     }
 
+    #[inline]
     fn predict(&mut self, dt: f64) {
         let tr = self.transition(dt);
         self.a = tr.t * self.a + tr.c;
@@ -149,6 +151,7 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
 
     /// One sample `dt` seconds after the previous one (ignored for the first sample); `None` or NaN is missing.
     pub fn step(&mut self, dt: f64, y: Option<f64>) -> Step {
+        let dt = self.model.step_key(dt);
         if let (Some(st), Some(y)) = (self.steady, y) {
             if dt == self.cached_dt && !y.is_nan() {
                 return self.step_steady(&st, y);

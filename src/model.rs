@@ -321,6 +321,13 @@ pub struct Prior<const N: usize> {
 pub trait StateSpace<const N: usize> {
     /// Exact transition over `dt` seconds (dt >= 0).
     fn transition(&self, dt: f64) -> Transition<N>;
+    /// The spacing the model actually uses for `dt`: two spacings with the same key have the same transition.
+    /// Continuous-time models use dt itself; a discrete model rounds to whole steps, so timestamp jitter does not
+    /// defeat the transition cache and the steady state.
+    #[inline]
+    fn step_key(&self, dt: f64) -> f64 {
+        dt
+    }
     fn observation(&self) -> Observation<N>;
     fn prior(&self) -> Prior<N>;
 }
@@ -334,6 +341,7 @@ pub struct Level {
 }
 
 impl StateSpace<1> for Level {
+    #[inline]
     fn transition(&self, dt: f64) -> Transition<1> {
         Transition {
             t: SMatrix::identity(),
@@ -341,6 +349,7 @@ impl StateSpace<1> for Level {
             q: SMatrix::from_element(self.level_rate * dt),
         }
     }
+    #[inline]
     fn observation(&self) -> Observation<1> {
         Observation {
             z: SVector::from_element(1.0),
@@ -368,6 +377,7 @@ pub struct Lag {
 }
 
 impl StateSpace<1> for Lag {
+    #[inline]
     fn transition(&self, dt: f64) -> Transition<1> {
         // One expm1 gives both: phi = 1 + em, and 1 - phi^2 = -em (2 + em) without the cancellation that
         // 1 - phi^2 suffers for dt << tau, where the state noise is tiny.
@@ -380,6 +390,7 @@ impl StateSpace<1> for Lag {
             q: SMatrix::from_element(q),
         }
     }
+    #[inline]
     fn observation(&self) -> Observation<1> {
         Observation {
             z: SVector::from_element(1.0),
@@ -406,6 +417,7 @@ pub struct Trend {
 }
 
 impl StateSpace<2> for Trend {
+    #[inline]
     fn transition(&self, dt: f64) -> Transition<2> {
         // u counts nominal intervals; the slope is per interval, so T = [[1, u], [0, 1]].
         let u = dt / self.interval;
@@ -422,6 +434,7 @@ impl StateSpace<2> for Trend {
             ),
         }
     }
+    #[inline]
     fn observation(&self) -> Observation<2> {
         Observation {
             z: SVector::<f64, 2>::new(1.0, 0.0),
@@ -491,19 +504,27 @@ impl<const N: usize> Arma<N> {
 }
 
 impl<const N: usize> StateSpace<N> for Arma<N> {
+    #[inline]
     fn transition(&self, dt: f64) -> Transition<N> {
-        let k = (dt / self.interval).round();
-        let k = if k.is_finite() && k > 0.0 {
-            k as u64
-        } else {
-            0
-        };
+        let k = (self.step_key(dt) / self.interval).round() as u64;
         if k == 1 {
             self.step
         } else {
             self.step.power(k)
         }
     }
+    /// Whole model steps, in seconds: round(dt / interval) * interval; 0 for anything not finite or below half
+    /// a step.
+    #[inline]
+    fn step_key(&self, dt: f64) -> f64 {
+        let k = (dt / self.interval).round();
+        if k.is_finite() && k > 0.0 {
+            k * self.interval
+        } else {
+            0.0
+        }
+    }
+    #[inline]
     fn observation(&self) -> Observation<N> {
         let mut z = SVector::zeros();
         z[0] = 1.0;
