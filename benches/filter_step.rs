@@ -8,7 +8,10 @@
 //! - `observed`: regular sampling, every value present (the common case; the transition matrices are cached).
 //! - `missing_1pct`: about 1% of values missing (predict-only steps mixed in at random).
 //! - `jittered_dt`: the interval varies by up to +-2% from sample to sample, as timestamps from a real gateway do,
-//!   so the filter recomputes the transition (exponentials, matrix composition) on every step.
+//!   so the filter recomputes the transition (exponentials, matrix composition) on every step; ARMA rounds to
+//!   whole steps and keeps its cache.
+//! - `every_other_missing`: the worst case for the steady-state shortcut, which never engages: the full
+//!   recursion on every step (alternately predict-only and predict+update).
 //!
 //! The `filter` group goes through the run-time `Filter` enum (what `channel` and `estimate` use); the `kalman`
 //! group calls the generic `Kalman<M, N>` directly, to show what the enum dispatch costs.
@@ -126,10 +129,18 @@ fn filter_step(c: &mut Criterion) {
     let (_, gappy) = lag_signal(LEN, 0.01, 1);
     let regular = intervals(false);
     let jittered = intervals(true);
-    let variants: [(&str, &[f64], &[f64]); 3] = [
+    // Every second value missing: no step can take the steady-state shortcut, so this times the full
+    // recursion (a predict-only step and a full predict+update step, alternately).
+    let alternating: Vec<f64> = clean
+        .iter()
+        .enumerate()
+        .map(|(i, y)| if i % 2 == 1 { f64::NAN } else { *y })
+        .collect();
+    let variants: [(&str, &[f64], &[f64]); 4] = [
         ("observed", &regular, &clean),
         ("missing_1pct", &regular, &gappy),
         ("jittered_dt", &jittered, &clean),
+        ("every_other_missing", &regular, &alternating),
     ];
 
     let mut group = c.benchmark_group("filter");
