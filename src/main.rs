@@ -238,12 +238,12 @@ fn fit(args: &FitArgs) -> Result<(), Failure> {
     let mut out = io::BufWriter::new(stdout.lock());
     match args.format {
         Format::Json => {
-            let doc = report::to_json(&cmp, interval, config.clone());
+            let doc = report::to_json(&cmp, interval, &series.values, config.clone());
             serde_json::to_writer(&mut out, &doc).map_err(other)?;
             writeln!(out).map_err(other)?;
         }
         Format::Table => {
-            out.write_all(report::table(&cmp, interval, &series.name).as_bytes())
+            out.write_all(report::table(&cmp, interval, &series.name, &series.values).as_bytes())
                 .map_err(other)?;
             if let Some(Some(block)) = &config {
                 writeln!(out).map_err(other)?;

@@ -9,6 +9,7 @@ use crate::config;
 use crate::estimate::{Comparison, EstimateError, Fit, MIN_OBSERVATIONS};
 use crate::history::Series;
 use crate::model::{ModelError, ModelKind, ModelParams, ModelSpec};
+use crate::stats;
 use serde::Serialize;
 use thiserror::Error;
 
@@ -308,6 +309,8 @@ pub struct FitJson {
     pub models: Vec<ModelJson>,
     pub best: Option<String>,
     pub common_skip: usize,
+    /// Sample ACF and PACF of the history, with their 95% bands: the usual first look for choosing ARMA orders.
+    pub correlogram: Option<Correlogram>,
     /// The `--emit-config` block, present only when asked for (null if no model converged).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub config: Option<Option<String>>,
@@ -339,8 +342,45 @@ impl ModelJson {
     }
 }
 
-/// The JSON document for a comparison; `config` is `Some(block)` when `--emit-config` was given.
-pub fn to_json(cmp: &Comparison, interval: f64, config: Option<Option<String>>) -> FitJson {
+/// Sample autocorrelations and partial autocorrelations of a history, lags 1..=`lags`, by sample order (with
+/// missing values skipped pairwise, as statsmodels' `missing="conservative"`), and their 95% half-widths:
+/// Bartlett's band for the ACF (it widens with the earlier correlations) and 1.96/sqrt(n) for the PACF.
+#[derive(Debug, Clone, Serialize)]
+pub struct Correlogram {
+    pub lags: usize,
+    pub acf: Vec<f64>,
+    pub acf_band: Vec<f64>,
+    pub pacf: Vec<f64>,
+    pub pacf_band: f64,
+}
+
+/// Lags shown: 20, or a quarter of the values present on a short history; None below 8 values.
+pub fn correlogram(values: &[f64]) -> Option<Correlogram> {
+    let n = values.iter().filter(|v| v.is_finite()).count();
+    if n < 8 {
+        return None;
+    }
+    let lags = (n / 4).min(20);
+    let acf = stats::acf(values, lags);
+    let band = stats::acf_band(&acf, n, 0.05);
+    let pacf = stats::pacf(values, lags);
+    Some(Correlogram {
+        lags,
+        acf: acf[1..].to_vec(),
+        acf_band: band[1..].to_vec(),
+        pacf: pacf[1..].to_vec(),
+        pacf_band: stats::pacf_band(n, 0.05),
+    })
+}
+
+/// The JSON document for a comparison of models fitted to `values`; `config` is `Some(block)` when
+/// `--emit-config` was given.
+pub fn to_json(
+    cmp: &Comparison,
+    interval: f64,
+    values: &[f64],
+    config: Option<Option<String>>,
+) -> FitJson {
     FitJson {
         n: cmp.n,
         missing: cmp.n_missing,
@@ -348,12 +388,14 @@ pub fn to_json(cmp: &Comparison, interval: f64, config: Option<Option<String>>) 
         models: cmp.fits.iter().map(ModelJson::of).collect(),
         best: cmp.best().map(|f| f.kind.to_string()),
         common_skip: cmp.common_skip,
+        correlogram: correlogram(values),
         config,
     }
 }
 
-/// The text report: a header line, the aligned table, and a note on how to read it.
-pub fn table(cmp: &Comparison, interval: f64, series_name: &str) -> String {
+/// The text report: a header line, the history's first autocorrelations, the aligned table, and a note on how to
+/// read it.
+pub fn table(cmp: &Comparison, interval: f64, series_name: &str, values: &[f64]) -> String {
     let best = cmp.best();
     let header = [
         "model",
@@ -420,6 +462,22 @@ pub fn table(cmp: &Comparison, interval: f64, series_name: &str) -> String {
         cmp.n_missing,
         sig(interval)
     );
+    if let Some(c) = correlogram(values) {
+        let first = |v: &[f64]| {
+            v.iter()
+                .take(5)
+                .map(|r| format!("{r:.2}"))
+                .collect::<Vec<_>>()
+                .join(" ")
+        };
+        out.push_str(&format!(
+            "autocorrelation at lags 1-5: {} (95% band ±{:.2} at lag 1); partial: {} (±{:.2})\n\n",
+            first(&c.acf),
+            c.acf_band[0],
+            first(&c.pacf),
+            c.pacf_band
+        ));
+    }
     out.push_str(&line(&header.map(String::from)));
     out.push_str(&line(
         &widths.iter().map(|w| "-".repeat(*w)).collect::<Vec<_>>(),
@@ -666,7 +724,7 @@ mod tests {
 
     #[test]
     fn table_lists_every_model_with_header_and_note() {
-        let t = table(&comparison(), 10.0, "TT-101");
+        let t = table(&comparison(), 10.0, "TT-101", &[]);
         assert!(
             t.starts_with("TT-101: n=120 values, 3 missing, median interval 10 s\n"),
             "{t}"
@@ -691,7 +749,7 @@ mod tests {
 
     #[test]
     fn json_layout_and_nulls() {
-        let doc = to_json(&comparison(), 10.0, None);
+        let doc = to_json(&comparison(), 10.0, &[], None);
         let v = serde_json::to_value(&doc).unwrap();
         let keys: Vec<&str> = v.as_object().unwrap().keys().map(|k| k.as_str()).collect();
         let mut want = vec!["n", "missing", "interval", "models", "best", "common_skip"];
@@ -718,7 +776,8 @@ mod tests {
         assert!(text.starts_with(
             "{\"n\":120,\"missing\":3,\"interval\":10.0,\"models\":[{\"model\":\"lag\""
         ));
-        let with_config = serde_json::to_value(to_json(&comparison(), 10.0, Some(None))).unwrap();
+        let with_config =
+            serde_json::to_value(to_json(&comparison(), 10.0, &[], Some(None))).unwrap();
         assert!(with_config["config"].is_null() && with_config.get("config").is_some());
     }
 
@@ -730,9 +789,9 @@ mod tests {
             n: 20,
             n_missing: 0,
         };
-        let v = serde_json::to_value(to_json(&c, 1.0, None)).unwrap();
+        let v = serde_json::to_value(to_json(&c, 1.0, &[], None)).unwrap();
         assert!(v["best"].is_null());
-        assert!(table(&c, 1.0, "x").contains("not converged"));
+        assert!(table(&c, 1.0, "x", &[]).contains("not converged"));
     }
 
     #[test]
@@ -786,9 +845,9 @@ mod tests {
             interval: 10.0,
         };
         let cmp = compare(&data, &DEFAULT_MODELS).unwrap();
-        let text = serde_json::to_string(&to_json(&cmp, 10.0, None)).unwrap();
+        let text = serde_json::to_string(&to_json(&cmp, 10.0, &[], None)).unwrap();
         let v: serde_json::Value = serde_json::from_str(&text).unwrap();
         assert_eq!(v["models"].as_array().unwrap().len(), 4);
-        assert!(table(&cmp, 10.0, "x").lines().count() > 6);
+        assert!(table(&cmp, 10.0, "x", &[]).lines().count() > 6);
     }
 }

@@ -493,3 +493,33 @@ fn help_mentions_bundled_example() {
     assert!(out.contains("bundled example"), "{out}");
     assert!(Path::new(&example()).exists());
 }
+
+/// The JSON carries the history's correlogram: the same numbers the `stats` module gives (checked there against
+/// statsmodels), for the values of the fitted column, and the table shows its first lags.
+#[test]
+fn fit_reports_the_history_correlogram() {
+    let doc: Value =
+        serde_json::from_str(&ok(&["fit", "--format", "json", "--models", "level"])).unwrap();
+    let c = &doc["correlogram"];
+    let lags = c["lags"].as_u64().unwrap() as usize;
+    assert_eq!(lags, 20);
+    let text =
+        std::fs::read_to_string(root().join("config/examples/vessel_temperature.csv")).unwrap();
+    let (series, _) = gaugewise::history::read_any(text.as_bytes(), "example", None, None).unwrap();
+    let values = &series[0].values;
+    let acf = gaugewise::stats::acf(values, lags);
+    let pacf = gaugewise::stats::pacf(values, lags);
+    for k in 1..=lags {
+        assert_eq!(c["acf"][k - 1].as_f64().unwrap(), acf[k], "acf lag {k}");
+        assert_eq!(c["pacf"][k - 1].as_f64().unwrap(), pacf[k], "pacf lag {k}");
+    }
+    let present = values.iter().filter(|v| !v.is_nan()).count();
+    assert_eq!(
+        c["pacf_band"].as_f64().unwrap(),
+        gaugewise::stats::pacf_band(present, 0.05)
+    );
+    // A slow first-order process: the PACF cuts off after lag 1 or 2 while the ACF decays slowly.
+    assert!(acf[1] > 0.8 && acf[5] > 0.6);
+    let table = ok(&["fit", "--models", "level"]);
+    assert!(table.contains("autocorrelation at lags 1-5: "), "{table}");
+}
