@@ -752,13 +752,23 @@ mod tests {
         let doc = to_json(&comparison(), 10.0, &[], None);
         let v = serde_json::to_value(&doc).unwrap();
         let keys: Vec<&str> = v.as_object().unwrap().keys().map(|k| k.as_str()).collect();
-        let mut want = vec!["n", "missing", "interval", "models", "best", "common_skip"];
+        let mut want = vec![
+            "n",
+            "missing",
+            "interval",
+            "models",
+            "best",
+            "common_skip",
+            "correlogram",
+        ];
         want.sort();
         let mut got = keys.clone();
         got.sort();
         assert_eq!(got, want);
         assert_eq!(v["best"], "lag");
         assert_eq!(v["common_skip"], 2);
+        // Too few values for a correlogram: null, not an empty or invented one.
+        assert_eq!(v["correlogram"], serde_json::Value::Null);
         let lag = &v["models"][0];
         assert_eq!(lag["model"], "lag");
         assert_eq!(lag["ljung_box"]["lag"], 10);

@@ -103,10 +103,18 @@ fn fit_json_layout() {
     let v: Value = serde_json::from_str(&out).unwrap();
     let top: Vec<&str> = v.as_object().unwrap().keys().map(|s| s.as_str()).collect();
     assert!(out.starts_with("{\"n\":2000,\"missing\":"), "{out}");
-    for k in ["n", "missing", "interval", "models", "best", "common_skip"] {
+    for k in [
+        "n",
+        "missing",
+        "interval",
+        "models",
+        "best",
+        "common_skip",
+        "correlogram",
+    ] {
         assert!(top.contains(&k), "{k} missing: {top:?}");
     }
-    assert_eq!(top.len(), 6, "{top:?}");
+    assert_eq!(top.len(), 7, "{top:?}");
     assert_eq!(v["common_skip"], 2);
     assert!((v["interval"].as_f64().unwrap() - 10.0).abs() < 1e-9);
     let models = v["models"].as_array().unwrap();
