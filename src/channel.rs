@@ -4,6 +4,10 @@
 //! feeds it from a CSV, the daemon from MQTT. It decides what a sample is (usable, missing, late, duplicate,
 //! rejected) and never lets a bad one touch the filter state. Pure core: no IO, no clock; time arrives as an
 //! argument in seconds.
+//!
+//! `Channel::stale(now)` is the daemon's answer for a channel that has gone quiet: the filter's forecast from the
+//! last sample to `now`, with its growing uncertainty, computed without touching the state, so a stale report
+//! never changes what the next real sample does.
 
 use crate::filter::{Filter, Step, StepKind};
 use crate::model::{ModelError, ModelSpec};
@@ -23,6 +27,8 @@ pub enum SampleStatus {
     Duplicate,
     /// Unusable (non-finite time, infinite value): dropped, state untouched.
     Rejected,
+    /// No sample for longer than the staleness limit: a forecast from the last sample, state untouched.
+    Stale,
 }
 
 impl SampleStatus {
@@ -33,6 +39,7 @@ impl SampleStatus {
             SampleStatus::Late => "late",
             SampleStatus::Duplicate => "duplicate",
             SampleStatus::Rejected => "rejected",
+            SampleStatus::Stale => "stale",
         }
     }
 }
@@ -79,6 +86,34 @@ impl Channel {
 
     pub fn last_time(&self) -> Option<f64> {
         self.last_time
+    }
+
+    /// The forecast at time `now` (seconds, the channel's own clock) from the last sample, as a `stale` outcome:
+    /// estimate and std of the predicted signal, no raw value, no innovation. The state is not changed, so the
+    /// next real sample is filtered exactly as if no stale report had been made. None before the first sample
+    /// (there is nothing to be stale about) or for a non-finite `now`. A `now` before the last sample forecasts
+    /// zero seconds ahead.
+    pub fn stale(&self, now: f64) -> Option<Outcome> {
+        let last = self.last_time?;
+        if !now.is_finite() {
+            return None;
+        }
+        let f = self.filter.forecast((now - last).max(0.0));
+        Some(Outcome {
+            time: now,
+            raw: f64::NAN,
+            status: SampleStatus::Stale,
+            step: Some(Step {
+                kind: StepKind::Missing,
+                predicted: f.signal,
+                predicted_var: f.obs_var,
+                innovation: f64::NAN,
+                standardized: f64::NAN,
+                estimate: f.signal,
+                estimate_var: f.signal_var,
+                loglik: 0.0,
+            }),
+        })
     }
 
     /// Takes one sample at time `t` (seconds); `None` or NaN is a missing value.
@@ -152,6 +187,39 @@ mod tests {
             SampleStatus::Rejected
         );
         assert_eq!(c.on_sample(110.0, Some(71.5)), reference);
+    }
+
+    #[test]
+    fn stale_forecasts_without_touching_state() {
+        let mut c = channel();
+        assert!(
+            c.stale(50.0).is_none(),
+            "nothing to forecast before a sample"
+        );
+        c.on_sample(0.0, Some(71.0));
+        c.on_sample(10.0, Some(71.4));
+        let reference = c.clone();
+        let near = c.stale(20.0).unwrap();
+        let far = c.stale(600.0).unwrap();
+        assert_eq!(near.status, SampleStatus::Stale);
+        assert_eq!(near.status.as_str(), "stale");
+        assert!(near.raw.is_nan() && near.step.unwrap().innovation.is_nan());
+        assert!(near.std() < far.std(), "uncertainty grows with silence");
+        // A lag relaxes towards its mean: the far forecast is closer to 70 than the near one.
+        let est = |o: &Outcome| o.step.unwrap().estimate;
+        assert!((est(&far) - 70.0).abs() < (est(&near) - 70.0).abs());
+        assert!(c.stale(f64::NAN).is_none());
+        assert_eq!(c.stale(5.0).unwrap().std(), c.stale(10.0).unwrap().std());
+        // The forecast equals a missing sample at that time, which is what the filter would do with one.
+        let mut probe = c.clone();
+        let missing = probe.on_sample(20.0, None).step.unwrap();
+        assert_eq!(near.step.unwrap().estimate, missing.estimate);
+        assert!((near.std() - missing.estimate_var.sqrt()).abs() < 1e-12);
+        // And the state did not move.
+        assert_eq!(
+            c.on_sample(30.0, Some(71.2)),
+            reference.clone().on_sample(30.0, Some(71.2))
+        );
     }
 
     #[test]

@@ -1,19 +1,40 @@
-//! Channel and model configuration, read from our own TOML format.
+//! Configuration, read from our own TOML format: channel models for every command, and the daemon's MQTT sections.
 //!
 //! The file says which model (`model`) each channel runs: a `[channels.default]` table for every channel, and
 //! `[[channels.override]]` tables whose `match` glob (globset syntax, case-sensitive, on the channel name) picks
 //! channels out. The first override that matches wins, in file order, so put specific patterns (`TT-101`) before
-//! general ones (`TT-*`). `gaugewise fit` writes blocks in this format ([`model_to_toml`]); the daemon reads it and
-//! will later find its `broker`, `inputs` and `output` sections here too. `config/plant.toml` is a worked example.
+//! general ones (`TT-*`). `gaugewise fit` writes blocks in this format ([`model_to_toml`]). The daemon's sections
+//! (`[broker]`, `[[inputs]]`, `[output]`, `[status]`, `[timing]`, `[limits]`) live in `daemon`; `replay` and `fit`
+//! ignore them, `check` and `run` need them through [`Config::daemon`]. `config/plant.toml` documents the channel
+//! keys and `config/brackenfield.toml` every key.
 //!
-//! Reading has two stages. Serde fills raw structs that deny unknown keys, because a typo (`obs_vr`) that passed
-//! silently would run a channel on a default the engineer believes they overrode. Validation then turns each table
-//! into a [`ModelSpec`]: keys the chosen model does not use are errors too, for the same reason. Every error names
-//! the file and the key path, with override tables counted from 0 as in `channels.override[0].tau`.
+//! Reading has three stages. Environment variables `GAUGEWISE_<SECTION>__<KEY>` (module `env`) are written into
+//! the parsed TOML first, so an override is checked exactly like the key in the file. Serde then fills raw structs
+//! that deny unknown keys, because a typo (`obs_vr`) that passed silently would run a channel on a default the
+//! engineer believes they overrode. Validation then turns each table into typed values such as [`ModelSpec`]: keys
+//! the chosen model does not use are errors too, for the same reason. Every error names the file and the key path,
+//! with array tables counted from 0 as in `channels.override[0].tau`, and says `(environment VAR)` when the value
+//! came from a variable.
+//!
+//! We do the environment layer ourselves rather than through the `config` crate: that crate merges sources into
+//! its own value tree, which loses TOML's spans (so the line and column of an error) and lowercases keys; it names
+//! "the environment" rather than the variable in errors; and an index level (`INPUTS__0`) becomes a table key that
+//! conflicts with the file's array.
+
+mod daemon;
+mod env;
+
+pub use daemon::{
+    check_filter, check_pointer, default_status_topic, BrokerConfig, ChannelTemplate, DaemonConfig,
+    InputConfig, JsonPayload, LimitsConfig, OutputConfig, PayloadFormat, Secret, TemplatePart,
+    TimeFormat, TimingConfig, TlsConfig, MAX_PACKET_LIMIT,
+};
+pub use env::{EnvOverride, ENV_NOT_CONFIG, ENV_PREFIX, ENV_SEPARATOR};
 
 use crate::model::{ModelError, ModelKind, ModelParams, ModelSpec};
 use globset::{Glob, GlobMatcher};
 use serde::Deserialize;
+use std::ffi::OsString;
 use std::path::Path;
 use thiserror::Error;
 
@@ -63,6 +84,14 @@ pub enum ConfigError {
         key: String,
         message: String,
     },
+    /// The value, or the key itself, came from environment variable `var`, not from the file.
+    #[error("{file}: {key}: {message} (environment {var})")]
+    Env {
+        file: String,
+        key: String,
+        var: String,
+        message: String,
+    },
 }
 
 impl ConfigError {
@@ -73,15 +102,34 @@ impl ConfigError {
             ConfigError::Schema { key, .. }
             | ConfigError::Missing { key, .. }
             | ConfigError::NotUsed { key, .. }
-            | ConfigError::Invalid { key, .. } => Some(key),
+            | ConfigError::Invalid { key, .. }
+            | ConfigError::Env { key, .. } => Some(key),
         }
     }
 }
 
-/// A whole configuration file.
+/// A whole configuration file, with environment overrides applied.
+///
+/// Every section present is validated; the daemon's sections are optional here (`replay` and `fit` need only
+/// `channels`). [`Config::daemon`] requires them and does the checks that read files.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Config {
     pub channels: ChannelConfig,
+    pub broker: Option<BrokerConfig>,
+    /// Empty when the file has no `[[inputs]]`.
+    pub inputs: Vec<InputConfig>,
+    pub output: Option<OutputConfig>,
+    /// `status.topic` if given; [`Config::daemon`] fills in the default from the client id.
+    pub status_topic: Option<String>,
+    pub timing: TimingConfig,
+    pub limits: LimitsConfig,
+    /// The name errors use for the file (the path as given).
+    pub source: String,
+    /// The environment variables that were applied, in the order they were applied.
+    pub env: Vec<EnvOverride>,
+    /// Directory that relative paths in the file (and in overrides) are resolved against; `None`: the working
+    /// directory.
+    base: Option<std::path::PathBuf>,
 }
 
 /// Which model each channel runs.
@@ -141,20 +189,104 @@ impl ChannelConfig {
 }
 
 impl Config {
-    /// Reads and validates a configuration file; errors name the path as given.
+    /// Reads and validates a configuration file, applying `GAUGEWISE_*` variables from the process environment.
+    /// Errors name the path as given; relative paths in the file are resolved against the file's directory.
     pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        Config::load_with_env(path, std::env::vars_os())
+    }
+
+    /// [`Config::load`] with the environment given explicitly (tests, or to ignore the process environment).
+    pub fn load_with_env<I, K, V>(path: &Path, env: I) -> Result<Config, ConfigError>
+    where
+        I: IntoIterator<Item = (K, V)>,
+        K: Into<OsString>,
+        V: Into<OsString>,
+    {
         let source = path.display().to_string();
         let text = std::fs::read_to_string(path).map_err(|e| ConfigError::Io {
             path: source.clone(),
             source: e,
         })?;
-        Config::from_str(&text, &source)
+        let base = path.parent().map(Path::to_path_buf);
+        Config::parse(&text, &source, env, base)
     }
 
-    /// Parses and validates configuration text; `source` names it in errors (usually the file path).
+    /// Parses and validates configuration text; `source` names it in errors (usually the file path). No
+    /// environment overrides; relative paths stay relative to the working directory.
     #[allow(clippy::should_implement_trait)] // FromStr cannot carry the source name errors need.
     pub fn from_str(text: &str, source: &str) -> Result<Config, ConfigError> {
-        let raw: RawConfig = toml::from_str(text).map_err(|e| serde_error(text, source, &e))?;
+        Config::parse(
+            text,
+            source,
+            std::iter::empty::<(OsString, OsString)>(),
+            None,
+        )
+    }
+
+    /// [`Config::from_str`] with environment overrides taken from `env` (name, value pairs; only names starting
+    /// with [`ENV_PREFIX`] are looked at).
+    pub fn from_str_with_env<I, K, V>(
+        text: &str,
+        source: &str,
+        env: I,
+    ) -> Result<Config, ConfigError>
+    where
+        I: IntoIterator<Item = (K, V)>,
+        K: Into<OsString>,
+        V: Into<OsString>,
+    {
+        Config::parse(text, source, env, None)
+    }
+
+    /// Everything the daemon needs, validated together: `[broker]`, at least one `[[inputs]]` and `[output]` must
+    /// be present. Reads `broker.password_file` and checks that the TLS files can be opened.
+    pub fn daemon(&self) -> Result<DaemonConfig, ConfigError> {
+        let ctx = daemon::Ctx {
+            file: &self.source,
+            base: self.base.as_deref(),
+        };
+        daemon::assemble(self, &ctx).map_err(|e| attribute(e, &self.env, None))
+    }
+
+    fn parse<I, K, V>(
+        text: &str,
+        source: &str,
+        env: I,
+        base: Option<std::path::PathBuf>,
+    ) -> Result<Config, ConfigError>
+    where
+        I: IntoIterator<Item = (K, V)>,
+        K: Into<OsString>,
+        V: Into<OsString>,
+    {
+        let overrides = env::collect(env).map_err(|p| env_problem(p, source))?;
+        let (raw, file_doc) = if overrides.is_empty() {
+            let raw =
+                toml::from_str::<RawConfig>(text).map_err(|e| serde_error(text, source, &e))?;
+            (raw, None)
+        } else {
+            let file_doc: toml::Table =
+                toml::from_str(text).map_err(|e| serde_error(text, source, &e))?;
+            (
+                with_overrides(text, &file_doc, source, &overrides)?,
+                Some(file_doc),
+            )
+        };
+        let ctx = daemon::Ctx {
+            file: source,
+            base: base.as_deref(),
+        };
+        let built =
+            Config::validate(raw, &ctx).map_err(|e| attribute(e, &overrides, file_doc.as_ref()))?;
+        Ok(Config {
+            env: overrides,
+            base,
+            ..built
+        })
+    }
+
+    fn validate(raw: RawConfig, ctx: &daemon::Ctx) -> Result<Config, ConfigError> {
+        let source = ctx.file;
         let channels = raw.channels.unwrap_or_default();
         let default = channels.default.ok_or_else(|| ConfigError::Missing {
             file: source.to_string(),
@@ -189,22 +321,304 @@ impl Config {
             matchers.push(glob.compile_matcher());
             overrides.push(Override { pattern, model });
         }
+        let inputs = raw
+            .inputs
+            .iter()
+            .enumerate()
+            .map(|(i, r)| daemon::input(r, i, ctx))
+            .collect::<Result<Vec<_>, _>>()?;
         Ok(Config {
             channels: ChannelConfig {
                 default,
                 overrides,
                 matchers,
             },
+            broker: raw
+                .broker
+                .as_ref()
+                .map(|b| daemon::broker(b, ctx))
+                .transpose()?,
+            inputs,
+            output: raw
+                .output
+                .as_ref()
+                .map(|o| daemon::output(o, ctx))
+                .transpose()?,
+            status_topic: match &raw.status {
+                Some(s) => daemon::status(s, ctx)?,
+                None => None,
+            },
+            timing: daemon::timing(&raw.timing.unwrap_or_default(), ctx)?,
+            limits: daemon::limits(&raw.limits.unwrap_or_default(), ctx)?,
+            source: source.to_string(),
+            env: Vec::new(),
+            base: None,
         })
     }
+}
+
+/// Applies the overrides to the parsed file and deserialises the result. Serde errors are attributed to the
+/// variable they are about, or else to the key in the file with its line and column there.
+fn with_overrides(
+    text: &str,
+    file_doc: &toml::Table,
+    source: &str,
+    overrides: &[EnvOverride],
+) -> Result<RawConfig, ConfigError> {
+    let mut applied: Vec<EnvOverride> = overrides.to_vec();
+    // The first error met at a variable's key, kept if reading the value as plain text fails the same way.
+    let mut first: Vec<Option<String>> = vec![None; applied.len()];
+    loop {
+        let mut doc = file_doc.clone();
+        for o in &applied {
+            env::apply(&mut doc, o).map_err(|p| env_problem(p, source))?;
+        }
+        let merged = toml::to_string(&doc).map_err(|e| ConfigError::Invalid {
+            file: source.to_string(),
+            key: "(environment)".to_string(),
+            message: format!("the overridden configuration cannot be written back as TOML: {e}"),
+        })?;
+        let e = match toml::from_str::<RawConfig>(&merged) {
+            Ok(raw) => return Ok(raw),
+            Err(e) => e,
+        };
+        let key = error_key(&merged, &e).unwrap_or_default();
+        let message = e.message().trim().to_string();
+        match owner(&key, &applied, Some(file_doc)) {
+            Some(i) => {
+                // A variable's text that reads as a number or date may be meant as a string (client_id = 0042).
+                if applied[i].typed() && first[i].is_none() {
+                    first[i] = Some(message);
+                    applied[i] = applied[i].as_text();
+                    continue;
+                }
+                return Err(ConfigError::Env {
+                    file: source.to_string(),
+                    key,
+                    var: applied[i].var.clone(),
+                    message: first[i].take().unwrap_or(message),
+                });
+            }
+            None => {
+                // The file's own mistake: report it where it is in the file, not in the merged text.
+                let (line, column) = key_position(text, &key).unwrap_or((1, 1));
+                return Err(ConfigError::Schema {
+                    file: source.to_string(),
+                    message: hint(&message, &key),
+                    key: if key.is_empty() {
+                        "(top level)".to_string()
+                    } else {
+                        key
+                    },
+                    line,
+                    column,
+                });
+            }
+        }
+    }
+}
+
+/// Which override an error at `key` is about: the one that set `key` or a key inside it, or one that set a key
+/// under `key` when the file does not have `key` at all (an unknown section named only by a variable). `file` is
+/// the file's own document, for that last test; validation errors pass `None` and so only match the first rule.
+fn owner(key: &str, overrides: &[EnvOverride], file: Option<&toml::Table>) -> Option<usize> {
+    if let Some(i) = overrides.iter().position(|o| is_under(key, &o.key)) {
+        return Some(i);
+    }
+    let file = file?;
+    if key.is_empty() || has_key(file, key) {
+        return None;
+    }
+    overrides.iter().position(|o| is_under(&o.key, key))
+}
+
+/// Restates an error whose key came from an environment variable as that variable's error. With the file's own
+/// document, a key missing from a table that only variables created (`GAUGEWISE_INPUTS__2__QOS` adding an input
+/// without a topic) is put on the variable too.
+fn attribute(e: ConfigError, overrides: &[EnvOverride], file: Option<&toml::Table>) -> ConfigError {
+    let Some(key) = e.key() else { return e };
+    let owner = match (&e, file) {
+        (ConfigError::Missing { .. }, Some(doc)) => {
+            let parent = &key[..key.rfind(['.', '[']).unwrap_or(0)];
+            if parent.is_empty() || has_key(doc, parent) {
+                None
+            } else {
+                overrides.iter().position(|o| is_under(&o.key, parent))
+            }
+        }
+        _ => owner(key, overrides, None),
+    };
+    let Some(i) = owner else { return e };
+    let (file, key, message) = match e {
+        ConfigError::Schema {
+            file, key, message, ..
+        }
+        | ConfigError::Invalid { file, key, message } => (file, key, message),
+        ConfigError::NotUsed {
+            file,
+            key,
+            model,
+            expected,
+        } => (
+            file,
+            key,
+            format!("not a parameter of model {model} (it takes {expected})"),
+        ),
+        ConfigError::Missing { file, key, hint } => (file, key, format!("missing ({hint})")),
+        other => return other,
+    };
+    ConfigError::Env {
+        file,
+        key,
+        var: overrides[i].var.clone(),
+        message,
+    }
+}
+
+/// `inner` is `outer` or a key inside it (`broker.tls.ca` in `broker`, `inputs[0].qos` in `inputs`).
+fn is_under(inner: &str, outer: &str) -> bool {
+    inner == outer
+        || (inner.starts_with(outer)
+            && matches!(inner.as_bytes().get(outer.len()), Some(b'.' | b'[')))
+}
+
+fn env_problem(p: env::EnvProblem, source: &str) -> ConfigError {
+    ConfigError::Env {
+        file: source.to_string(),
+        key: p.key,
+        var: p.var,
+        message: p.message,
+    }
+}
+
+/// Whether the document has a value at `key` (a path as errors print it).
+fn has_key(doc: &toml::Table, key: &str) -> bool {
+    let mut node: Option<&toml::Value> = None;
+    for (i, seg) in split_key(key).into_iter().enumerate() {
+        node = match (i, node, seg) {
+            (0, _, KeySeg::Key(k)) => doc.get(&k),
+            (_, Some(toml::Value::Table(t)), KeySeg::Key(k)) => t.get(&k),
+            (_, Some(toml::Value::Array(a)), KeySeg::Index(n)) => a.get(n),
+            _ => None,
+        };
+        if node.is_none() {
+            return false;
+        }
+    }
+    node.is_some()
+}
+
+enum KeySeg {
+    Key(String),
+    Index(usize),
+}
+
+/// Splits `a.b[2].c` into its levels. Quoted keys (only channel-override patterns would need them, and those are
+/// values, not keys) are not expected in our schema's paths.
+fn split_key(key: &str) -> Vec<KeySeg> {
+    let mut out = Vec::new();
+    for part in key.split('.') {
+        let mut rest = part;
+        if let Some(open) = rest.find('[') {
+            out.push(KeySeg::Key(rest[..open].to_string()));
+            rest = &rest[open..];
+            while let Some(stripped) = rest.strip_prefix('[') {
+                let close = stripped.find(']').unwrap_or(stripped.len());
+                out.push(match stripped[..close].parse() {
+                    Ok(n) => KeySeg::Index(n),
+                    Err(_) => KeySeg::Key(stripped[..close].to_string()),
+                });
+                rest = stripped.get(close + 1..).unwrap_or("");
+            }
+        } else {
+            out.push(KeySeg::Key(rest.to_string()));
+        }
+    }
+    out
+}
+
+/// Line and column of `key` in the file's text, or of its nearest enclosing key that is there.
+fn key_position(text: &str, key: &str) -> Option<(usize, usize)> {
+    let doc = toml::de::DeTable::parse(text).ok()?;
+    let mut key = key.to_string();
+    loop {
+        let mut found = None;
+        find_span(doc.get_ref(), &key, String::new(), &mut found);
+        if let Some(start) = found {
+            return Some(line_column(text, start));
+        }
+        let cut = key.rfind(['.', '['])?;
+        key.truncate(cut);
+    }
+}
+
+fn find_span(
+    table: &toml::de::DeTable<'_>,
+    target: &str,
+    prefix: String,
+    found: &mut Option<usize>,
+) {
+    for (k, v) in table.iter() {
+        if found.is_some() {
+            return;
+        }
+        let name = if prefix.is_empty() {
+            key_text(k.get_ref())
+        } else {
+            format!("{prefix}.{}", key_text(k.get_ref()))
+        };
+        if name == target {
+            *found = Some(k.span().start);
+            return;
+        }
+        find_span_value(v, target, name, found);
+    }
+}
+
+fn find_span_value(
+    value: &toml::Spanned<toml::de::DeValue<'_>>,
+    target: &str,
+    name: String,
+    found: &mut Option<usize>,
+) {
+    match value.get_ref() {
+        toml::de::DeValue::Table(t) => find_span(t, target, name, found),
+        toml::de::DeValue::Array(items) => {
+            for (i, item) in items.iter().enumerate() {
+                let name = format!("{name}[{i}]");
+                if name == target {
+                    *found = Some(item.span().start);
+                    return;
+                }
+                find_span_value(item, target, name, found);
+            }
+        }
+        _ => {}
+    }
+}
+
+/// One line describing a model, for `gaugewise check`: `lag, interval 10.0, mean 72.5, ...`.
+pub fn model_line(spec: &ModelSpec) -> String {
+    let mut out = spec.kind().to_string();
+    for line in model_to_toml(spec, "[x]", None).lines().skip(2) {
+        if let Some((k, v)) = line.split_once(" = ") {
+            out.push_str(&format!(", {k} {v}"));
+        }
+    }
+    out
 }
 
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields, expecting = "a table with a [channels] section")]
 struct RawConfig {
     channels: Option<RawChannels>,
-    // Later sections of the daemon go here, each a deny_unknown_fields struct of its own:
-    // `broker` (MQTT connection), `inputs` (topics to channels), `output` (what is published where).
+    broker: Option<daemon::RawBroker>,
+    #[serde(default)]
+    inputs: Vec<daemon::RawInput>,
+    output: Option<daemon::RawOutput>,
+    status: Option<daemon::RawStatus>,
+    timing: Option<daemon::RawTiming>,
+    limits: Option<daemon::RawLimits>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -405,36 +819,47 @@ fn serde_error(text: &str, file: &str, e: &toml::de::Error) -> ConfigError {
     let span = e.span().unwrap_or(0..0);
     let (line, column) = line_column(text, span.start);
     let message = e.message().trim().to_string();
-    let path = match toml::de::DeTable::parse(text) {
-        Ok(doc) => {
-            let mut best = (0usize, String::new());
-            locate(doc.get_ref(), &span, String::new(), 1, &mut best);
-            best.1
-        }
-        Err(_) => {
-            return ConfigError::Syntax {
-                file: file.to_string(),
-                line,
-                column,
-                message,
-            }
-        }
-    };
-    let message = if path.ends_with("override") && message.contains("expected a sequence") {
-        format!("{message}; write each override as a [[channels.override]] table (double brackets)")
-    } else {
-        message
+    let Some(path) = error_key(text, e) else {
+        return ConfigError::Syntax {
+            file: file.to_string(),
+            line,
+            column,
+            message,
+        };
     };
     ConfigError::Schema {
         file: file.to_string(),
         key: if path.is_empty() {
             "(top level)".to_string()
         } else {
-            path
+            path.clone()
         },
         line,
         column,
-        message,
+        message: hint(&message, &path),
+    }
+}
+
+/// The key path a serde error is about ("" for the top level), or `None` if the text is not TOML at all.
+fn error_key(text: &str, e: &toml::de::Error) -> Option<String> {
+    let span = e.span().unwrap_or(0..0);
+    let doc = toml::de::DeTable::parse(text).ok()?;
+    let mut best = (0usize, String::new());
+    locate(doc.get_ref(), &span, String::new(), 1, &mut best);
+    Some(best.1)
+}
+
+/// A single `[table]` where an array of tables is expected is a common slip; say how to write it.
+fn hint(message: &str, path: &str) -> String {
+    if !message.contains("expected a sequence") {
+        return message.to_string();
+    }
+    if path.ends_with("override") {
+        format!("{message}; write each override as a [[channels.override]] table (double brackets)")
+    } else if path == "inputs" {
+        format!("{message}; write each input as an [[inputs]] table (double brackets)")
+    } else {
+        message.to_string()
     }
 }
 
@@ -1029,7 +1454,229 @@ mod tests {
         );
     }
 
+    /// A daemon config with two inputs, for environment overrides.
+    const DAEMON: &str = "[channels.default]\nmodel = \"level\"\ninterval = 1.0\nobs_var = 1.0\nlevel_var = 0.1\n\
+        [[channels.override]]\nmatch = \"TT-*\"\nmodel = \"level\"\ninterval = 1.0\nobs_var = 0.5\nlevel_var = 0.1\n\
+        [broker]\nclient_id = \"gw-01\"\n\
+        [[inputs]]\ntopic = \"plant/raw/+\"\nchannel = \"{2}\"\npayload = \"number\"\n\
+        [[inputs]]\ntopic = \"plant/json/+\"\nchannel = \"{2}\"\npayload = \"json\"\nvalue = \"/v\"\n\
+        [output]\ntopic = \"plant/clean/{channel}\"\n";
+
+    fn with_env(text: &str, vars: &[(&str, &str)]) -> Result<Config, ConfigError> {
+        Config::from_str_with_env(
+            text,
+            FILE,
+            vars.iter().map(|(k, v)| (k.to_string(), v.to_string())),
+        )
+    }
+
+    fn env_message(text: &str, vars: &[(&str, &str)]) -> String {
+        let e = with_env(text, vars)
+            .and_then(|c| c.daemon().map(|_| c))
+            .expect_err("expected an error");
+        let m = e.to_string();
+        assert!(m.starts_with(&format!("{FILE}: ")), "{m}");
+        assert!(!m.contains('\n'), "{m}");
+        m
+    }
+
+    #[test]
+    fn environment_overrides_keys() {
+        let c = with_env(
+            DAEMON,
+            &[
+                ("GAUGEWISE_BROKER__PORT", "1884"),
+                ("GAUGEWISE_BROKER__HOST", "10.0.0.7"),
+                ("GAUGEWISE_INPUTS__1__QOS", "0"),
+                ("GAUGEWISE_OUTPUT__TOPIC", "site/clean/{channel}"),
+                ("GAUGEWISE_OUTPUT__RETAIN", "true"),
+                ("GAUGEWISE_CHANNELS__OVERRIDE__0__OBS_VAR", "0.05"),
+                ("GAUGEWISE_INPUTS__1__GOOD_QUALITY", "[192, \"good\"]"),
+                ("GAUGEWISE_INPUTS__1__QUALITY", "/q"),
+                ("GAUGEWISE_TIMING__STALE_AFTER_S", "0"),
+                ("GAUGEWISE_LOG", "debug"),
+                ("OTHER_BROKER__PORT", "1"),
+            ],
+        )
+        .unwrap();
+        let d = c.daemon().unwrap();
+        assert_eq!((d.broker.host.as_str(), d.broker.port), ("10.0.0.7", 1884));
+        assert_eq!((d.inputs[0].qos, d.inputs[1].qos), (1, 0));
+        assert_eq!(d.output.topic, "site/clean/{channel}");
+        assert!(d.output.retain);
+        assert_eq!(
+            d.stale_after_s, None,
+            "a section absent from the file can be created"
+        );
+        assert_eq!(
+            c.channels.overrides[0].model.params,
+            ModelParams::Level {
+                obs_var: 0.05,
+                level_var: 0.1
+            }
+        );
+        let crate::config::PayloadFormat::Json(j) = &d.inputs[1].payload else {
+            panic!()
+        };
+        assert_eq!(
+            j.good_quality,
+            Some(vec![serde_json::json!(192), serde_json::json!("good")])
+        );
+        // Applied in key order; GAUGEWISE_LOG is not a key; values are not shown.
+        assert_eq!(c.env.len(), 9);
+        assert_eq!(c.env[0].var, "GAUGEWISE_BROKER__HOST");
+        assert!(d
+            .env_overrides
+            .contains(&"GAUGEWISE_BROKER__PORT -> broker.port".to_string()));
+        assert!(d
+            .describe()
+            .contains("environment: GAUGEWISE_INPUTS__1__QOS -> inputs[1].qos"));
+        assert!(!format!("{:?}", c.env).contains("1884"));
+    }
+
+    #[test]
+    fn environment_text_that_reads_as_a_number_can_be_a_string() {
+        let d = with_env(
+            DAEMON,
+            &[
+                ("GAUGEWISE_BROKER__CLIENT_ID", "0042"),
+                ("GAUGEWISE_BROKER__USERNAME", "true"),
+            ],
+        )
+        .unwrap()
+        .daemon()
+        .unwrap();
+        assert_eq!(d.broker.client_id, "0042");
+        assert_eq!(d.broker.username.as_deref(), Some("true"));
+        let d = with_env(DAEMON, &[("GAUGEWISE_BROKER__CLIENT_ID", "\"quoted\"")])
+            .unwrap()
+            .daemon()
+            .unwrap();
+        assert_eq!(d.broker.client_id, "quoted");
+        // A number where a number belongs keeps the number's message.
+        assert_eq!(
+            env_message(DAEMON, &[("GAUGEWISE_BROKER__PORT", "1.5")]),
+            "config/test.toml: broker.port: invalid type: floating point `1.5`, expected i64 \
+             (environment GAUGEWISE_BROKER__PORT)"
+        );
+        assert_eq!(
+            env_message(DAEMON, &[("GAUGEWISE_BROKER__PORT", "http")]),
+            "config/test.toml: broker.port: invalid type: string \"http\", expected i64 (environment GAUGEWISE_BROKER__PORT)"
+        );
+    }
+
+    #[test]
+    fn environment_errors_name_the_variable() {
+        let cases: [(&str, &str, &str); 12] = [
+            ("GAUGEWISE_BROKER__PROT", "1884", "broker.prot: unknown field `prot`"),
+            ("GAUGEWISE_BROKR__PORT", "1884", "brokr: unknown field `brokr`"),
+            ("GAUGEWISE_BROKER__PORT", "0", "broker.port: must be an integer from 1 to 65535 (got 0)"),
+            ("GAUGEWISE_INPUTS__0__QOS", "7", "inputs[0].qos: must be 0, 1 or 2 (got 7)"),
+            ("GAUGEWISE_INPUTS__5__QOS", "1", "inputs[5]: inputs has 2 element(s): an override can set one of them or add the next, [2]"),
+            ("GAUGEWISE_INPUTS__2__QOS", "1", "inputs[2].topic: missing (an MQTT topic filter"),
+            ("GAUGEWISE_BROKER__CLIENT_ID__X", "1", "broker.client_id: is a string in the file, not a table, so it has no key `x`"),
+            ("GAUGEWISE_BROKER__PORT__X", "1", "broker.port: invalid type: map, expected i64"),
+            ("GAUGEWISE_BROKER____PORT", "1", "broker..port: is not a key path: a level is empty"),
+            ("GAUGEWISE_7", "1", "7: is not a key path: it starts with an index"),
+            ("GAUGEWISE_CHANNELS__DEFAULT__TAU", "5", "channels.default.tau: not a parameter of model level"),
+            ("GAUGEWISE_OUTPUT__TOPIC", "plant/raw/{channel}", "output.topic: \"plant/raw/{channel}\" can be matched by inputs[0]"),
+        ];
+        for (var, value, expected) in cases {
+            let m = env_message(DAEMON, &[(var, value)]);
+            assert!(
+                m.starts_with(&format!("{FILE}: {expected}"))
+                    && m.ends_with(&format!(" (environment {var})")),
+                "{var}={value}: {m}"
+            );
+        }
+        let e = with_env(DAEMON, &[("GAUGEWISE_BROKER__PROT", "1")]).unwrap_err();
+        assert_eq!(e.key(), Some("broker.prot"));
+    }
+
+    #[test]
+    fn file_errors_keep_their_line_with_overrides_present() {
+        let text = DAEMON.replace("[output]\n", "[output]\nqoss = 1\n");
+        let plain = message(&text);
+        let with = env_message(&text, &[("GAUGEWISE_BROKER__PORT", "1884")]);
+        assert_eq!(plain, with);
+        assert!(with.contains("output.qoss: unknown field `qoss`"), "{with}");
+        assert!(with.ends_with("(line 24, column 1)"), "{with}");
+        // A value the variable replaces is not an error of the file's.
+        let text = DAEMON.replace("[broker]\n", "[broker]\nport = \"x\"\n");
+        assert!(message(&text).starts_with("config/test.toml: broker.port: invalid type"));
+        with_env(&text, &[("GAUGEWISE_BROKER__PORT", "1884")]).unwrap();
+        // A variable cannot hide a file error elsewhere.
+        let text = DAEMON.replace("[broker]\n", "[broker]\nkeep_alive_s = -5\n");
+        assert_eq!(
+            env_message(&text, &[("GAUGEWISE_BROKER__PORT", "1884")]),
+            "config/test.toml: broker.keep_alive_s: must be an integer from 0 to 65535 (got -5)"
+        );
+    }
+
+    #[test]
+    fn environment_can_add_array_elements_in_index_order() {
+        let vars = [
+            ("GAUGEWISE_INPUTS__3__TOPIC", "plant/d/+"),
+            ("GAUGEWISE_INPUTS__3__CHANNEL", "d-{2}"),
+            ("GAUGEWISE_INPUTS__3__PAYLOAD", "number"),
+            ("GAUGEWISE_INPUTS__2__TOPIC", "plant/c/+"),
+            ("GAUGEWISE_INPUTS__2__CHANNEL", "c-{2}"),
+            ("GAUGEWISE_INPUTS__2__PAYLOAD", "number"),
+        ];
+        let d = with_env(DAEMON, &vars).unwrap().daemon().unwrap();
+        let topics: Vec<&str> = d.inputs.iter().map(|i| i.topic.as_str()).collect();
+        assert_eq!(
+            topics,
+            ["plant/raw/+", "plant/json/+", "plant/c/+", "plant/d/+"]
+        );
+        // With no [[inputs]] in the file at all, variables alone can define one.
+        let text = DAEMON.split("[[inputs]]").next().unwrap().to_string()
+            + "[output]\ntopic = \"plant/clean/{channel}\"\n";
+        let first: Vec<(String, &str)> = vars[3..]
+            .iter()
+            .map(|(k, v)| (k.replace("__2__", "__0__"), *v))
+            .collect();
+        let first: Vec<(&str, &str)> = first.iter().map(|(k, v)| (k.as_str(), *v)).collect();
+        let d = with_env(&text, &first).unwrap().daemon().unwrap();
+        assert_eq!(d.inputs.len(), 1);
+        assert_eq!(d.inputs[0].topic, "plant/c/+");
+        let m = env_message(&text, &vars[..3]);
+        assert!(m.contains("inputs[3]: inputs has 0 element(s)"), "{m}");
+    }
+
+    #[test]
+    fn environment_non_unicode_is_refused() {
+        use std::os::unix::ffi::OsStringExt;
+        let bad = OsString::from_vec(vec![0x66, 0x6f, 0x80]);
+        let e = Config::from_str_with_env(
+            DAEMON,
+            FILE,
+            [(OsString::from("GAUGEWISE_BROKER__HOST"), bad.clone())],
+        )
+        .unwrap_err();
+        assert!(
+            e.to_string()
+                .contains("not valid UTF-8 (environment GAUGEWISE_BROKER__HOST)"),
+            "{e}"
+        );
+        // Other variables may hold anything.
+        Config::from_str_with_env(DAEMON, FILE, [(OsString::from("PATH_X"), bad)]).unwrap();
+    }
+
     proptest! {
+        #[test]
+        fn arbitrary_environment_never_panics(
+            name in "[A-Z_0-9]{0,30}",
+            value in any::<String>(),
+            text in "[\\[\\]a-z_.=\"0-9, \n{}/+#]{0,80}",
+        ) {
+            let vars = [(format!("GAUGEWISE_{name}"), value)];
+            if let Ok(c) = Config::from_str_with_env(DAEMON, FILE, vars.clone()) {
+                let _ = c.daemon();
+            }
+            let _ = Config::from_str_with_env(&format!("{DAEMON}{text}"), FILE, vars);
+        }
+
         #[test]
         fn arbitrary_text_never_panics(text in any::<String>()) {
             let _ = parse(&text);

@@ -5,13 +5,18 @@
 //! and `config` read the bench's inputs; `report` formats what `fit` prints and `replay` runs a config over a history
 //! through `channel`, the daemon's per-sample path.
 
+pub mod broker;
 pub mod channel;
 pub mod config;
 pub mod estimate;
 pub mod filter;
 pub mod history;
+pub mod ingest;
 pub mod model;
+pub mod publish;
 pub mod replay;
 pub mod report;
+pub mod runtime;
+pub mod simulate;
 pub mod stats;
 pub mod transform;

@@ -13,6 +13,7 @@ use gaugewise::estimate::{self, Data};
 use gaugewise::history::{self, Series, TimeBase};
 use gaugewise::replay::{self, Replay};
 use gaugewise::report;
+use gaugewise::runtime;
 use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -53,6 +54,26 @@ enum Command {
         value; std is `inf` while a diffuse model is still initialising. A summary goes to stderr."
     )]
     Replay(ReplayArgs),
+    /// Run the daemon: subscribe to the configured MQTT inputs and publish one filtered output per sample.
+    #[command(
+        long_about = "Run the daemon: connect to the configured MQTT broker, subscribe to the inputs, filter \
+        every sample through its channel's model (the same code path as replay) and publish one JSON output per \
+        sample, plus stale forecasts for channels that have gone quiet.\n\n\
+        Runs until SIGTERM or SIGINT (Ctrl-C), then stops taking messages, flushes what is in flight, publishes the \
+        retained offline status and exits 0. Configuration errors exit 2 before connecting. Logs go to stderr; set \
+        GAUGEWISE_LOG or RUST_LOG (e.g. debug, or gaugewise=debug) to change the level, default info."
+    )]
+    Run(RunArgs),
+    /// Load and validate a daemon configuration and print what it resolves to.
+    #[command(
+        long_about = "Load and validate a daemon configuration (with GAUGEWISE_* environment overrides applied) \
+        and print what it resolves to: the broker connection (never the password), the inputs, the output and \
+        status topics, timing, limits and the channel models in the order they are tried.\n\n\
+        Unlike replay, check needs the daemon's sections ([broker], at least one [[inputs]], [output]) and reads \
+        the files they name (password_file, TLS). Exits 0 if the configuration is usable; otherwise prints one \
+        line naming the file, the key and what is wrong, and exits 2."
+    )]
+    Check(CheckArgs),
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -96,6 +117,20 @@ struct ReplayArgs {
     output: Option<PathBuf>,
 }
 
+#[derive(Debug, clap::Args)]
+struct RunArgs {
+    /// Configuration (TOML) with [broker], [[inputs]], [output] and the channel models.
+    #[arg(long, value_name = "FILE.toml")]
+    config: PathBuf,
+}
+
+#[derive(Debug, clap::Args)]
+struct CheckArgs {
+    /// Configuration (TOML) to check, e.g. config/brackenfield.toml.
+    #[arg(long, value_name = "FILE.toml")]
+    config: PathBuf,
+}
+
 /// A failure and the exit code it earns.
 struct Failure {
     code: u8,
@@ -133,6 +168,8 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Fit(args) => fit(&args),
         Command::Replay(args) => replay(&args),
+        Command::Run(args) => run(&args),
+        Command::Check(args) => check(&args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -302,4 +339,70 @@ fn write_rows<W: Write>(run: Replay, out: W, path: &Path) -> Result<replay::Summ
     replay::write_csv(run, out)
         .with_context(|| format!("cannot write {}", path.display()))
         .map_err(other)
+}
+
+fn check(args: &CheckArgs) -> Result<(), Failure> {
+    let daemon = Config::load(&args.config)
+        .and_then(|c| c.daemon())
+        .map_err(input)?;
+    let mut out = io::stdout().lock();
+    out.write_all(daemon.describe().as_bytes())
+        .and_then(|()| out.flush())
+        .map_err(other)
+}
+
+fn run(args: &RunArgs) -> Result<(), Failure> {
+    // Everything that can be wrong with the configuration is found here, before any connection is made.
+    let config = Config::load(&args.config).map_err(input)?;
+    let daemon = config.daemon().map_err(input)?;
+    let (settings, pipeline) =
+        runtime::from_config(&daemon, runtime::wall_clock()).map_err(input)?;
+    runtime::mqtt_options(&settings).map_err(input)?;
+    init_logging();
+    tracing::info!(
+        config = %args.config.display(),
+        overrides = ?daemon.env_overrides,
+        "gaugewise {} starting",
+        env!("CARGO_PKG_VERSION")
+    );
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .thread_name("gaugewise")
+        .build()
+        .context("cannot start the async runtime")
+        .map_err(other)?;
+    let result = rt.block_on(async {
+        // Installed before anything connects, so an early SIGTERM is a clean stop too.
+        let stop = runtime::termination_signal();
+        runtime::run(
+            settings,
+            std::sync::Arc::new(daemon.channels.clone()),
+            pipeline,
+            stop,
+        )
+        .await
+    });
+    // Tasks still running (a worker that missed the drain deadline) must not hold the exit.
+    rt.shutdown_timeout(std::time::Duration::from_millis(500));
+    result.map_err(input)?;
+    Ok(())
+}
+
+/// Log lines to stderr through `tracing`: level from GAUGEWISE_LOG, else RUST_LOG, else info.
+fn init_logging() {
+    use std::io::IsTerminal;
+    use tracing_subscriber::EnvFilter;
+    let filter = ["GAUGEWISE_LOG", "RUST_LOG"]
+        .iter()
+        .find_map(|var| {
+            std::env::var(var)
+                .ok()
+                .and_then(|v| EnvFilter::try_new(v).ok())
+        })
+        .unwrap_or_else(|| EnvFilter::new("info"));
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(io::stderr)
+        .with_ansi(io::stderr().is_terminal())
+        .try_init();
 }

@@ -62,6 +62,8 @@ impl Summary {
             SampleStatus::Late => self.late += 1,
             SampleStatus::Duplicate => self.duplicate += 1,
             SampleStatus::Rejected => self.rejected += 1,
+            // A replay has no wall clock, so it never reports a channel stale; counted with the missing if it did.
+            SampleStatus::Stale => self.missing += 1,
         }
     }
 

@@ -1,5 +1,8 @@
-//! Helpers shared by the integration tests: fixture loading and tolerant comparison.
+//! Helpers shared by the integration tests: fixture loading, tolerant comparison, and (in `broker`) test brokers
+//! and an MQTT client.
 #![allow(dead_code)]
+
+pub mod broker;
 
 use serde_json::Value;
 use std::path::PathBuf;

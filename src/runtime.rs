@@ -1,0 +1,847 @@
+//! The daemon: MQTT in, one filtered output per sample out, for as long as the process runs.
+//!
+//! [`run`] is `gaugewise run` as a library function, so the demo and tests can start the daemon in-process. It owns
+//! the tokio side of gaugewise; the math stays in the synchronous core (`channel`), which it drives exactly as
+//! `replay` does. Its parts:
+//!
+//! - **Event loop task.** rumqttc's `EventLoop` is polled without pause in a task of its own: it is what moves
+//!   packets both ways and sends the keep-alive pings. rumqttc reconnects on the very next poll after an error, so
+//!   the pause between attempts is ours ([`backoff`]), reset by each ConnAck. On every ConnAck the task renews the
+//!   subscriptions unless the broker kept the session, and publishes the retained `online` status; the Last Will
+//!   set at connect turns it `offline` if the process dies.
+//! - **Routing.** Each incoming message is routed (topic and payload to a sample) in that task, a pure and cheap
+//!   step, then sent to the worker that owns the channel: a stable hash of the channel name ([`shard`]) so one
+//!   channel's samples stay in order while channels spread over the cores. The worker queues are bounded; a full
+//!   queue pauses reading from the broker (TCP back-pressure) rather than dropping samples.
+//! - **Workers.** Each owns its channels' state and feeds every sample to `Channel::on_sample`, then hands one
+//!   output per sample to the MQTT client with `try_publish`: the request queue is drained only by the event loop
+//!   task, so a worker must never wait on it. A full queue drops the output and counts it (`publish_dropped`).
+//!   A timer per worker publishes `stale` forecasts for quiet channels ([`stale`]).
+//! - **Counters and logs.** [`counters`] counts every event; refused input is logged at most once per reason per
+//!   10 s, with the number of lines left out; a summary line is logged every minute and at the end.
+//! - **Shutdown.** When the `shutdown` future completes: stop routing (later messages are ignored and counted as
+//!   received only), let the workers drain their queues, publish the retained `offline` status, disconnect, and
+//!   wait until the event loop has written everything queued before the disconnect (at most [`FLUSH_TIMEOUT`]).
+//!
+//! Wall-clock time (seconds since the Unix epoch) is read here, at the edge, and passed into the core as the
+//! receive time of a sample and the "now" of a stale report.
+
+pub mod backoff;
+pub mod counters;
+pub mod setup;
+pub mod shard;
+pub mod stale;
+pub mod tls;
+
+use crate::channel::{Channel, Outcome, SampleStatus};
+use crate::config::ChannelConfig;
+use crate::ingest::{Router, Sample};
+use crate::publish::{self, OutputTopic};
+use backoff::Backoff;
+pub use counters::{CounterSnapshot, Counters, LogLimiter};
+use rumqttc::{
+    AsyncClient, ConnectReturnCode, Event, EventLoop, LastWill, MqttOptions, Outgoing, Packet, QoS,
+    SubscribeReasonCode, Transport,
+};
+pub use setup::from_config;
+use stale::StaleTimer;
+use std::collections::HashMap;
+use std::future::Future;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use thiserror::Error;
+pub use tls::{TlsError, TlsFiles};
+use tokio::sync::{mpsc, watch};
+use tracing::{debug, error, info, warn};
+
+/// How long shutdown waits for the event loop to write what was queued before the disconnect.
+pub const FLUSH_TIMEOUT: Duration = Duration::from_secs(3);
+/// How long shutdown waits for the workers to drain their queues.
+const DRAIN_TIMEOUT: Duration = Duration::from_secs(1);
+/// At most one log line per rejection reason per this period.
+const REJECT_LOG_PERIOD: Duration = Duration::from_secs(10);
+/// Reconnect attempts while shutting down are capped at this pause: there are only seconds left.
+const SHUTDOWN_RECONNECT_CAP: Duration = Duration::from_millis(250);
+
+/// Everything the runtime needs to know about the connection and its limits, already validated.
+#[derive(Debug, Clone)]
+pub struct Settings {
+    pub host: String,
+    pub port: u16,
+    /// Fixed and non-empty when `clean_session` is false (the broker keeps the session under this id).
+    pub client_id: String,
+    pub keep_alive: Duration,
+    /// false: a persistent session, so QoS 1 messages published while the daemon was away are delivered later.
+    pub clean_session: bool,
+    pub credentials: Option<(String, String)>,
+    /// Some: connect over TLS with this material.
+    pub tls: Option<TlsFiles>,
+    /// Largest MQTT packet accepted or sent, in bytes (rumqttc's default of 10 KiB is too small to be implicit).
+    pub max_packet_size: usize,
+    /// Topic filters to subscribe to, with their QoS.
+    pub subscriptions: Vec<(String, QoS)>,
+    pub output_qos: QoS,
+    pub output_retain: bool,
+    /// Where the retained online/offline status goes (also the Last Will's topic).
+    pub status_topic: String,
+    pub status_online: Vec<u8>,
+    pub status_offline: Vec<u8>,
+    pub reconnect_min: Duration,
+    pub reconnect_max: Duration,
+    /// Silence (wall clock) after which a channel reports `stale`; None: never.
+    pub stale_after: Option<Duration>,
+    /// Cadence of stale reports while the silence lasts.
+    pub stale_every: Duration,
+    /// Worker tasks (channels are sharded over them).
+    pub workers: usize,
+    /// Samples queued per worker.
+    pub worker_queue: usize,
+    /// Requests (outputs) queued towards the MQTT client.
+    pub request_queue: usize,
+    /// Most channels the daemon keeps state for; samples of further channels are rejected.
+    pub max_channels: usize,
+    /// Period of the counter summary in the log.
+    pub summary_every: Duration,
+}
+
+/// A sample on its way to its worker, with its wall-clock receive time (seconds since the epoch, for staleness).
+#[derive(Debug, Clone, PartialEq)]
+struct Queued {
+    sample: Sample,
+    received: f64,
+}
+
+/// An input the daemon refused: why (a short fixed label) and what it was about (channel, else topic).
+#[derive(Debug, Clone, PartialEq)]
+struct Refusal {
+    reason: &'static str,
+    key: String,
+    /// A readable detail for the log.
+    detail: String,
+}
+
+/// The message-format side of the daemon: how topics and payloads become samples (`ingest`) and where outputs
+/// go (`publish`).
+#[derive(Debug, Clone)]
+pub struct Pipeline {
+    pub router: Router,
+    pub output: OutputTopic,
+}
+
+/// What a run did, once it has stopped.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct RunReport {
+    pub counters: CounterSnapshot,
+    /// Channels with state at the end.
+    pub channels: usize,
+    /// Whether everything queued before the disconnect was written (false: the flush timed out).
+    pub flushed: bool,
+}
+
+/// Why the daemon could not start. Once running, it does not stop on errors: connection problems are retried
+/// and bad input is counted.
+#[derive(Debug, Error)]
+pub enum RuntimeError {
+    #[error("TLS: {0}")]
+    Tls(#[from] TlsError),
+    #[error("{0}")]
+    Settings(String),
+}
+
+/// Seconds since the Unix epoch, now.
+pub fn wall_clock() -> f64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64())
+}
+
+/// The rumqttc options for `settings`: identity, session, limits, credentials, TLS and the Last Will.
+pub fn mqtt_options(settings: &Settings) -> Result<MqttOptions, RuntimeError> {
+    if settings.client_id.is_empty() && !settings.clean_session {
+        return Err(RuntimeError::Settings(
+            "a persistent session (clean_session = false) needs a fixed, non-empty client id"
+                .to_string(),
+        ));
+    }
+    let mut o = MqttOptions::new(
+        settings.client_id.clone(),
+        settings.host.clone(),
+        settings.port,
+    );
+    // rumqttc refuses (panics on) a keep-alive under a second other than zero, which disables it.
+    let keep_alive = if settings.keep_alive.is_zero() {
+        Duration::ZERO
+    } else {
+        settings.keep_alive.max(Duration::from_secs(1))
+    };
+    o.set_keep_alive(keep_alive)
+        .set_clean_session(settings.clean_session)
+        .set_max_packet_size(settings.max_packet_size, settings.max_packet_size)
+        .set_last_will(LastWill::new(
+            settings.status_topic.clone(),
+            settings.status_offline.clone(),
+            QoS::AtLeastOnce,
+            true,
+        ));
+    if let Some((user, password)) = &settings.credentials {
+        o.set_credentials(user.clone(), password.clone());
+    }
+    if let Some(files) = &settings.tls {
+        let config = tls::client_config(files)?;
+        o.set_transport(Transport::tls_with_config(
+            rumqttc::TlsConfiguration::Rustls(config),
+        ));
+    }
+    Ok(o)
+}
+
+/// Shared by the event loop task and the workers.
+struct Shared {
+    settings: Settings,
+    counters: Counters,
+    limiter: LogLimiter,
+    /// Cleared at shutdown: messages still arriving are no longer routed.
+    routing: AtomicBool,
+    /// Channels with state, across workers (for `max_channels`).
+    channels: AtomicUsize,
+    /// Wall-clock seconds since the epoch; a field so the one place that reads the clock is explicit.
+    clock: fn() -> f64,
+}
+
+impl Shared {
+    /// Counts a refusal and logs it, rate-limited per reason.
+    fn refuse(&self, r: &Refusal) {
+        self.counters.reject(r.reason, &r.key);
+        if let Some(suppressed) = self.limiter.check(r.reason, Instant::now()) {
+            if suppressed > 0 {
+                warn!(reason = r.reason, key = %r.key, suppressed, "input refused: {} ({suppressed} more of this reason not logged)", r.detail);
+            } else {
+                warn!(reason = r.reason, key = %r.key, "input refused: {}", r.detail);
+            }
+        }
+    }
+}
+
+/// Runs the daemon until `shutdown` completes, then shuts down cleanly (see the module notes) and reports.
+///
+/// Must be called inside a tokio runtime (the workers are spawned on it; a multi-thread runtime uses the cores).
+/// Fails only before connecting, on settings that cannot work (e.g. an unreadable TLS file).
+pub async fn run(
+    settings: Settings,
+    channels: Arc<ChannelConfig>,
+    pipeline: Pipeline,
+    shutdown: impl Future<Output = ()>,
+) -> Result<RunReport, RuntimeError> {
+    let options = mqtt_options(&settings)?;
+    let (client, eventloop) = AsyncClient::new(options, settings.request_queue.max(1));
+    let workers = settings.workers.max(1);
+    let shared = Arc::new(Shared {
+        counters: Counters::new(),
+        limiter: LogLimiter::new(REJECT_LOG_PERIOD),
+        routing: AtomicBool::new(true),
+        channels: AtomicUsize::new(0),
+        clock: wall_clock,
+        settings,
+    });
+    info!(
+        host = %shared.settings.host,
+        port = shared.settings.port,
+        client_id = %shared.settings.client_id,
+        workers,
+        "starting"
+    );
+
+    let (stop_tx, stop_rx) = watch::channel(false);
+    let mut senders = Vec::with_capacity(workers);
+    let mut worker_tasks = Vec::with_capacity(workers);
+    for id in 0..workers {
+        let (tx, rx) = mpsc::channel(shared.settings.worker_queue.max(1));
+        senders.push(tx);
+        let worker = Worker::new(
+            id,
+            shared.clone(),
+            channels.clone(),
+            pipeline.output.clone(),
+            client.clone(),
+        );
+        worker_tasks.push(tokio::spawn(worker.run(rx, stop_rx.clone())));
+    }
+    let poller = tokio::spawn(poll_loop(
+        eventloop,
+        client.clone(),
+        shared.clone(),
+        Arc::new(pipeline.router),
+        senders,
+        stop_rx.clone(),
+    ));
+    let summary = tokio::spawn(summary_loop(shared.clone()));
+
+    shutdown.await;
+    info!("shutting down: no longer taking messages");
+    shared.routing.store(false, Ordering::SeqCst);
+    let _ = stop_tx.send(true);
+    let drained = tokio::time::timeout(DRAIN_TIMEOUT, async {
+        let mut total = 0;
+        for t in worker_tasks {
+            total += t.await.unwrap_or(0);
+        }
+        total
+    })
+    .await;
+    let channel_count = match drained {
+        Ok(n) => n,
+        Err(_) => {
+            warn!("workers did not drain their queues within {DRAIN_TIMEOUT:?}");
+            shared.channels.load(Ordering::Relaxed)
+        }
+    };
+
+    // The offline status and the disconnect go through the same FIFO request queue as the outputs, so when the
+    // event loop reports the disconnect as sent, everything queued before it has been written.
+    let flush = async {
+        let s = &shared.settings;
+        if let Err(e) = client
+            .publish(
+                s.status_topic.clone(),
+                QoS::AtLeastOnce,
+                true,
+                s.status_offline.clone(),
+            )
+            .await
+        {
+            warn!("cannot queue the offline status: {e}");
+        }
+        if let Err(e) = client.disconnect().await {
+            warn!("cannot queue the disconnect: {e}");
+        }
+    };
+    let deadline = tokio::time::Instant::now() + FLUSH_TIMEOUT;
+    let poller_handle = poller.abort_handle();
+    let flushed = tokio::time::timeout_at(deadline, async {
+        flush.await;
+        poller.await
+    })
+    .await;
+    let flushed = match flushed {
+        Ok(Ok(PollEnd::Disconnected)) => true,
+        Ok(_) => false,
+        Err(_) => {
+            warn!("outgoing messages not flushed within {FLUSH_TIMEOUT:?}; disconnecting anyway");
+            false
+        }
+    };
+    // Dropping the event loop closes the connection; without a DISCONNECT sent, the broker publishes the Last Will,
+    // which is the offline status too.
+    poller_handle.abort();
+    summary.abort();
+    let counters = shared.counters.snapshot();
+    info!(channels = channel_count, flushed, "stopped: {counters}");
+    Ok(RunReport {
+        counters,
+        channels: channel_count,
+        flushed,
+    })
+}
+
+async fn summary_loop(shared: Arc<Shared>) {
+    let period = shared.settings.summary_every.max(Duration::from_secs(1));
+    let mut tick = tokio::time::interval_at(tokio::time::Instant::now() + period, period);
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    loop {
+        tick.tick().await;
+        let channels = shared.channels.load(Ordering::Relaxed);
+        info!(channels, "{}", shared.counters.snapshot());
+    }
+}
+
+/// How the event loop task ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum PollEnd {
+    /// The disconnect was written: everything queued before it went out.
+    Disconnected,
+    /// The request queue closed (every client handle dropped).
+    Closed,
+}
+
+async fn poll_loop(
+    mut eventloop: EventLoop,
+    client: AsyncClient,
+    shared: Arc<Shared>,
+    router: Arc<Router>,
+    senders: Vec<mpsc::Sender<Queued>>,
+    mut stop: watch::Receiver<bool>,
+) -> PollEnd {
+    let s = &shared.settings;
+    let seed = backoff::process_seed();
+    let mut backoff = Backoff::new(
+        s.reconnect_min.as_secs_f64(),
+        s.reconnect_max.as_secs_f64(),
+        seed,
+    );
+    let mut connected_before = false;
+    let mut connected = false;
+    loop {
+        let event = eventloop.poll().await;
+        match event {
+            Ok(Event::Incoming(Packet::ConnAck(ack))) => {
+                backoff.reset();
+                connected = true;
+                if connected_before {
+                    Counters::bump(&shared.counters.reconnects);
+                    info!(session_present = ack.session_present, "reconnected");
+                } else {
+                    info!(session_present = ack.session_present, "connected");
+                }
+                connected_before = true;
+                if shared.routing.load(Ordering::SeqCst) {
+                    announce(&client, &shared, !ack.session_present);
+                }
+            }
+            Ok(Event::Incoming(Packet::Publish(p))) => {
+                Counters::bump(&shared.counters.received);
+                if !shared.routing.load(Ordering::Relaxed) {
+                    continue;
+                }
+                let received = (shared.clock)();
+                match router.route(&p.topic, &p.payload, received) {
+                    Ok(sample) => {
+                        let w = shard::shard_of(&sample.channel, senders.len());
+                        // Awaiting here is the back-pressure: a worker behind pauses reading from the broker.
+                        // It cannot deadlock: workers never wait on anything this task drains.
+                        if senders[w].send(Queued { sample, received }).await.is_err() {
+                            debug!(
+                                "a sample arrived while the workers were stopping; not processed"
+                            );
+                        }
+                    }
+                    Err(reject) => shared.refuse(&Refusal {
+                        reason: reject.reason(),
+                        // Counted against the channel when the topic names one, else against the topic.
+                        key: router
+                            .channel_for(&p.topic)
+                            .unwrap_or_else(|| p.topic.clone()),
+                        detail: format!(
+                            "{reject} (topic {})",
+                            counters::clip(&p.topic, counters::MAX_KEY_BYTES)
+                        ),
+                    }),
+                }
+            }
+            Ok(Event::Incoming(Packet::SubAck(ack))) => {
+                for (i, code) in ack.return_codes.iter().enumerate() {
+                    if matches!(code, SubscribeReasonCode::Failure) {
+                        let filter = s.subscriptions.get(i).map_or("?", |(f, _)| f.as_str());
+                        error!(filter, "the broker refused the subscription");
+                    }
+                }
+            }
+            Ok(Event::Outgoing(Outgoing::Disconnect)) => return PollEnd::Disconnected,
+            Ok(_) => {}
+            Err(rumqttc::ConnectionError::RequestsDone) => return PollEnd::Closed,
+            Err(e) => {
+                let mut delay = backoff.next_delay();
+                let stopping = *stop.borrow();
+                if stopping {
+                    delay = delay.min(SHUTDOWN_RECONNECT_CAP);
+                }
+                match &e {
+                    rumqttc::ConnectionError::ConnectionRefused(code) => error!(
+                        reason = refusal_text(*code),
+                        retry_in_s = delay.as_secs_f64(),
+                        "the broker refused the connection"
+                    ),
+                    _ if connected => warn!(
+                        error = %e,
+                        retry_in_s = delay.as_secs_f64(),
+                        "connection to the broker lost"
+                    ),
+                    _ => warn!(
+                        error = %e,
+                        retry_in_s = delay.as_secs_f64(),
+                        "cannot connect to the broker"
+                    ),
+                }
+                connected = false;
+                tokio::select! {
+                    _ = tokio::time::sleep(delay) => {}
+                    // Shutdown while waiting: retry at once, to flush what is queued if the broker is back.
+                    _ = stop.changed(), if !stopping => {}
+                }
+            }
+        }
+    }
+}
+
+/// After a ConnAck: renew the subscriptions (when the broker did not keep them) and publish the retained online
+/// status. Spawned, because the request queue may be full and only the event loop task, the caller, drains it.
+fn announce(client: &AsyncClient, shared: &Arc<Shared>, subscribe: bool) {
+    let client = client.clone();
+    let shared = shared.clone();
+    tokio::spawn(async move {
+        let s = &shared.settings;
+        if subscribe && !s.subscriptions.is_empty() {
+            let filters = s
+                .subscriptions
+                .iter()
+                .map(|(f, q)| rumqttc::SubscribeFilter::new(f.clone(), *q));
+            if let Err(e) = client.subscribe_many(filters).await {
+                warn!("cannot queue the subscriptions: {e}");
+            }
+        }
+        if let Err(e) = client
+            .publish(
+                s.status_topic.clone(),
+                QoS::AtLeastOnce,
+                true,
+                s.status_online.clone(),
+            )
+            .await
+        {
+            warn!("cannot queue the online status: {e}");
+        }
+    });
+}
+
+fn refusal_text(code: ConnectReturnCode) -> &'static str {
+    match code {
+        ConnectReturnCode::Success => "success",
+        ConnectReturnCode::RefusedProtocolVersion => "protocol version not supported",
+        ConnectReturnCode::BadClientId => "client id refused",
+        ConnectReturnCode::ServiceUnavailable => "service unavailable",
+        ConnectReturnCode::BadUserNamePassword => "bad user name or password",
+        ConnectReturnCode::NotAuthorized => "not authorised",
+    }
+}
+
+/// One channel as a worker keeps it.
+struct ChannelState {
+    name: String,
+    channel: Channel,
+    topic: String,
+    /// Wall-clock receive time of the last accepted sample.
+    last_received: f64,
+}
+
+/// A worker: the state of the channels sharded to it.
+struct Worker {
+    id: usize,
+    shared: Arc<Shared>,
+    config: Arc<ChannelConfig>,
+    output: OutputTopic,
+    client: AsyncClient,
+    index: HashMap<String, usize>,
+    channels: Vec<ChannelState>,
+    stale: StaleTimer,
+}
+
+impl Worker {
+    fn new(
+        id: usize,
+        shared: Arc<Shared>,
+        config: Arc<ChannelConfig>,
+        output: OutputTopic,
+        client: AsyncClient,
+    ) -> Self {
+        let s = &shared.settings;
+        let stale = StaleTimer::new(
+            s.stale_after.map_or(0.0, |d| d.as_secs_f64()),
+            s.stale_every.as_secs_f64(),
+        );
+        Self {
+            id,
+            shared,
+            config,
+            output,
+            client,
+            index: HashMap::new(),
+            channels: Vec::new(),
+            stale,
+        }
+    }
+
+    /// Processes samples until stopped, then drains the queue; returns the number of channels it held.
+    async fn run(
+        mut self,
+        mut rx: mpsc::Receiver<Queued>,
+        mut stop: watch::Receiver<bool>,
+    ) -> usize {
+        let tick = stale_tick(&self.shared.settings);
+        let mut timer = tokio::time::interval(tick);
+        timer.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        let mut due = Vec::new();
+        loop {
+            tokio::select! {
+                biased;
+                sample = rx.recv() => match sample {
+                    Some(sample) => self.on_sample(sample),
+                    None => break,
+                },
+                _ = stop.changed() => {
+                    // No new samples; what is queued is processed.
+                    rx.close();
+                    while let Some(sample) = rx.recv().await {
+                        self.on_sample(sample);
+                    }
+                    break;
+                }
+                _ = timer.tick(), if self.stale.enabled() => {
+                    let now = (self.shared.clock)();
+                    due.clear();
+                    self.stale.due(now, &mut due);
+                    for &i in &due {
+                        self.report_stale(i, now);
+                    }
+                }
+            }
+        }
+        debug!(
+            worker = self.id,
+            channels = self.channels.len(),
+            "worker stopped"
+        );
+        self.channels.len()
+    }
+
+    fn on_sample(&mut self, queued: Queued) {
+        let Queued { sample, received } = queued;
+        let Some(i) = self.channel_index(&sample.channel) else {
+            return;
+        };
+        let state = &mut self.channels[i];
+        let outcome = state.channel.on_sample(sample.time, sample.value);
+        match outcome.status {
+            SampleStatus::Ok | SampleStatus::Missing => {
+                state.last_received = received;
+                self.stale.on_sample(i, received);
+            }
+            SampleStatus::Late => Counters::bump(&self.shared.counters.late),
+            SampleStatus::Duplicate => Counters::bump(&self.shared.counters.duplicate),
+            SampleStatus::Rejected => self.shared.refuse(&Refusal {
+                reason: "unusable_sample",
+                key: sample.channel.clone(),
+                detail: format!(
+                    "time {} / value {:?} cannot be filtered",
+                    sample.time, sample.value
+                ),
+            }),
+            SampleStatus::Stale => {}
+        }
+        self.publish(i, &outcome);
+    }
+
+    /// The index of `name`'s state, created on its first sample; None (and counted) past `max_channels`.
+    fn channel_index(&mut self, name: &str) -> Option<usize> {
+        if let Some(&i) = self.index.get(name) {
+            return Some(i);
+        }
+        let max = self.shared.settings.max_channels;
+        let taken = self.shared.channels.fetch_add(1, Ordering::Relaxed);
+        if taken >= max {
+            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+            self.shared.refuse(&Refusal {
+                reason: "too_many_channels",
+                key: name.to_string(),
+                detail: format!("the daemon already keeps {max} channels (limits.max_channels)"),
+            });
+            return None;
+        }
+        let channel = match Channel::new(self.config.model_for(name)) {
+            Ok(c) => c,
+            Err(e) => {
+                // Config validation builds every model it names, so this means a bug; refuse, do not panic.
+                self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+                self.shared.refuse(&Refusal {
+                    reason: "bad_model",
+                    key: name.to_string(),
+                    detail: format!("its configured model is unusable: {e}"),
+                });
+                return None;
+            }
+        };
+        let mut topic = String::new();
+        if let Err(e) = self.output.render(name, &mut topic) {
+            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+            self.shared.refuse(&Refusal {
+                reason: "no_output_topic",
+                key: name.to_string(),
+                detail: format!("no output topic for this channel: {e}"),
+            });
+            return None;
+        }
+        let i = self.channels.len();
+        self.channels.push(ChannelState {
+            name: name.to_string(),
+            channel,
+            topic,
+            last_received: f64::NAN,
+        });
+        let stale_index = self.stale.add();
+        debug_assert_eq!(stale_index, i);
+        self.index.insert(name.to_string(), i);
+        Some(i)
+    }
+
+    fn report_stale(&mut self, i: usize, now: f64) {
+        let state = &self.channels[i];
+        // The channel's clock may not be the wall clock (payload timestamps from a device): forecast as far past
+        // its last sample as the wall clock has moved since that sample was received.
+        let Some(last) = state.channel.last_time() else {
+            return;
+        };
+        let Some(outcome) = state.channel.stale(last + (now - state.last_received)) else {
+            return;
+        };
+        Counters::bump(&self.shared.counters.stale);
+        self.publish(i, &outcome);
+    }
+
+    fn publish(&self, i: usize, outcome: &Outcome) {
+        let state = &self.channels[i];
+        let mut payload = Vec::with_capacity(256);
+        publish::write_payload(
+            &mut payload,
+            &state.name,
+            state.channel.spec().kind(),
+            outcome,
+        );
+        let s = &self.shared.settings;
+        match self
+            .client
+            .try_publish(state.topic.clone(), s.output_qos, s.output_retain, payload)
+        {
+            Ok(()) => Counters::bump(&self.shared.counters.published),
+            Err(_) => {
+                Counters::bump(&self.shared.counters.publish_dropped);
+                if let Some(suppressed) =
+                    self.shared.limiter.check("publish_dropped", Instant::now())
+                {
+                    warn!(
+                        suppressed,
+                        "output dropped: the MQTT request queue is full (limits.request_queue) or closed"
+                    );
+                }
+            }
+        }
+    }
+}
+
+/// How often a worker looks for stale channels: a quarter of the shorter period, between 50 ms and 1 s.
+fn stale_tick(s: &Settings) -> Duration {
+    let shortest = match s.stale_after {
+        Some(after) => after.min(s.stale_every),
+        None => return Duration::from_secs(1),
+    };
+    (shortest / 4).clamp(Duration::from_millis(50), Duration::from_secs(1))
+}
+
+/// The stop signal of the process: SIGTERM or SIGINT (Ctrl-C), whichever comes first.
+///
+/// The handlers are installed by this call, not when the future is first polled, so a signal that arrives while
+/// the daemon is still starting is not lost (nor does it kill the process the default way). Call it inside the
+/// tokio runtime.
+pub fn termination_signal() -> impl Future<Output = ()> + Send {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        let handlers = signal(SignalKind::terminate())
+            .and_then(|term| Ok((term, signal(SignalKind::interrupt())?)));
+        async move {
+            match handlers {
+                Ok((mut term, mut int)) => {
+                    tokio::select! {
+                        _ = term.recv() => info!("SIGTERM received"),
+                        _ = int.recv() => info!("SIGINT received"),
+                    }
+                }
+                Err(e) => {
+                    error!(
+                        "cannot listen for SIGTERM/SIGINT ({e}); only Ctrl-C will stop the daemon"
+                    );
+                    let _ = tokio::signal::ctrl_c().await;
+                }
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        async {
+            let _ = tokio::signal::ctrl_c().await;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn settings() -> Settings {
+        Settings {
+            host: "127.0.0.1".into(),
+            port: 1,
+            client_id: "gw-1".into(),
+            keep_alive: Duration::from_secs(30),
+            clean_session: false,
+            credentials: None,
+            tls: None,
+            max_packet_size: 65536,
+            subscriptions: vec![("plant/#".into(), QoS::AtLeastOnce)],
+            output_qos: QoS::AtMostOnce,
+            output_retain: false,
+            status_topic: "gaugewise/gw-1/status".into(),
+            status_online: b"online".to_vec(),
+            status_offline: b"offline".to_vec(),
+            reconnect_min: Duration::from_millis(500),
+            reconnect_max: Duration::from_secs(30),
+            stale_after: Some(Duration::from_secs(60)),
+            stale_every: Duration::from_secs(10),
+            workers: 2,
+            worker_queue: 1024,
+            request_queue: 4096,
+            max_channels: 1000,
+            summary_every: Duration::from_secs(60),
+        }
+    }
+
+    #[test]
+    fn options_carry_the_settings() {
+        let o = mqtt_options(&settings()).unwrap();
+        assert_eq!(o.client_id(), "gw-1");
+        assert!(!o.clean_session());
+        assert_eq!(o.max_packet_size(), 65536);
+        let will = o.last_will().unwrap();
+        assert_eq!(will.topic, "gaugewise/gw-1/status");
+        assert_eq!(&will.message[..], b"offline");
+        assert!(will.retain);
+    }
+
+    #[test]
+    fn persistent_session_needs_a_client_id() {
+        let mut s = settings();
+        s.client_id = String::new();
+        assert!(matches!(mqtt_options(&s), Err(RuntimeError::Settings(_))));
+        s.clean_session = true;
+        assert!(mqtt_options(&s).is_ok());
+    }
+
+    #[test]
+    fn tls_problems_stop_the_start() {
+        let mut s = settings();
+        s.tls = Some(TlsFiles {
+            ca: Some("missing-ca.pem".into()),
+            ..TlsFiles::default()
+        });
+        let e = mqtt_options(&s).unwrap_err().to_string();
+        assert!(e.contains("missing-ca.pem"), "{e}");
+    }
+
+    #[test]
+    fn stale_tick_is_bounded() {
+        let mut s = settings();
+        assert_eq!(stale_tick(&s), Duration::from_secs(1));
+        s.stale_after = Some(Duration::from_millis(100));
+        assert_eq!(stale_tick(&s), Duration::from_millis(50));
+        s.stale_after = None;
+        assert_eq!(stale_tick(&s), Duration::from_secs(1));
+    }
+}
