@@ -24,10 +24,10 @@
 #[path = "../tests/common/broker.rs"]
 mod broker;
 
-use broker::{send_signal, TestBroker};
-use gaugewise::broker::{null_relay, NullRelay, MAX_PACKET_SIZE};
+use broker::send_signal;
+use gaugewise::broker::{null_relay, EmbeddedBroker, NullRelay, MAX_PACKET_SIZE};
 use hdrhistogram::Histogram;
-use rumqttc::{Client, Event, MqttOptions, Packet, QoS};
+use rumqttc::{Client, Connection, Event, MqttOptions, NetworkOptions, Packet, QoS};
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -102,6 +102,10 @@ struct Params {
     mem_channels: usize,
     /// GWBENCH_MEM_RATE=20000: samples/s while case c creates its channels.
     mem_rate: f64,
+    /// GWBENCH_BROKER_NODELAY=1: Mosquitto's `set_tcp_nodelay` (0 leaves Nagle's algorithm on, its default).
+    broker_nodelay: bool,
+    /// GWBENCH_CLIENT_NODELAY=1: TCP_NODELAY on the bench's own publisher and receiver.
+    client_nodelay: bool,
 }
 
 impl Params {
@@ -123,6 +127,8 @@ impl Params {
             },
             mem_channels: env_or("GWBENCH_MEM_CHANNELS", 100_000)?,
             mem_rate: env_or("GWBENCH_MEM_RATE", 20_000.0)?,
+            broker_nodelay: env_or("GWBENCH_BROKER_NODELAY", 1u8)? != 0,
+            client_nodelay: env_or("GWBENCH_CLIENT_NODELAY", 1u8)? != 0,
         };
         if p.channels == 0 || p.mem_channels == 0 || p.rounds == 0 || p.window == 0 {
             return Err("channel counts, rounds and window must be at least 1".into());
@@ -157,15 +163,20 @@ fn env_or<T: FromStr>(name: &str, default: T) -> Result<T, String> {
 
 fn run(p: &Params) -> Result<(), String> {
     let ticks_per_s = clock_ticks();
-    let broker = match p.broker.as_str() {
-        "embedded" => TestBroker::embedded(),
-        "mosquitto" => TestBroker::mosquitto().ok_or("mosquitto is not installed")?,
-        _ => TestBroker::mosquitto().unwrap_or_else(TestBroker::embedded),
+    let mosquitto = match p.broker.as_str() {
+        "embedded" => None,
+        "mosquitto" => {
+            Some(BenchMosquitto::start(p.broker_nodelay)?.ok_or("mosquitto is not installed")?)
+        }
+        _ => BenchMosquitto::start(p.broker_nodelay)?,
     };
-    let port = broker.port();
-    let broker_pid = match &broker {
-        TestBroker::Mosquitto(m) => m.pid(),
-        TestBroker::Embedded(_) => None,
+    let broker = match mosquitto {
+        Some(m) => Broker::Mosquitto(m),
+        None => Broker::Embedded(EmbeddedBroker::start().map_err(|e| e.to_string())?),
+    };
+    let (port, broker_pid) = match &broker {
+        Broker::Mosquitto(m) => (m.port, Some(m.child.id())),
+        Broker::Embedded(b) => (b.port(), None),
     };
     let daemon_bin = daemon_binary()?;
 
@@ -179,16 +190,22 @@ fn run(p: &Params) -> Result<(), String> {
             .unwrap_or_else(|| "?".into())
     );
     match &broker {
-        TestBroker::Mosquitto(_) => println!(
-            "  broker: {} on 127.0.0.1:{port} (single-threaded: the ceiling for everything here)",
-            mosquitto_version()
+        Broker::Mosquitto(_) => println!(
+            "  broker: {} on 127.0.0.1:{port}, set_tcp_nodelay {} (single-threaded: the ceiling for \
+             everything here)",
+            mosquitto_version(),
+            p.broker_nodelay
         ),
-        TestBroker::Embedded(_) => println!(
+        Broker::Embedded(_) => println!(
             "  broker: the embedded rumqttd on 127.0.0.1:{port} (Mosquitto is not installed or not chosen; \
              the targets assume Mosquitto, and this broker shares the bench's own process)"
         ),
     }
     println!("  daemon: {}", daemon_bin.display());
+    println!(
+        "  bench clients (publisher, receiver): TCP_NODELAY {}",
+        p.client_nodelay
+    );
     match ticks_per_s {
         Tick::Getconf(t) => println!("  CPU time: /proc utime+stime, CLK_TCK {t} (getconf)"),
         Tick::Assumed(t) => {
@@ -198,8 +215,8 @@ fn run(p: &Params) -> Result<(), String> {
     println!();
 
     let clock = Clock::new();
-    let receiver = Receiver::start(port, clock)?;
-    let publisher = Publisher::start(port)?;
+    let receiver = Receiver::start(port, clock, p.client_nodelay)?;
+    let publisher = Publisher::start(port, p.client_nodelay)?;
     let ctx = Ctx {
         port,
         clock,
@@ -258,6 +275,89 @@ fn run(p: &Params) -> Result<(), String> {
     drop(receiver);
     drop(broker);
     Ok(())
+}
+
+enum Broker {
+    Mosquitto(BenchMosquitto),
+    Embedded(EmbeddedBroker),
+}
+
+/// A Mosquitto of our own on a free loopback port, as `tests/common/broker.rs` starts one, with a configuration
+/// for a benchmark: no persistence, quiet log, and `set_tcp_nodelay` as asked. Killed when dropped.
+struct BenchMosquitto {
+    port: u16,
+    child: Child,
+    _dir: tempfile::TempDir,
+}
+
+impl BenchMosquitto {
+    /// `None` when Mosquitto is not installed.
+    fn start(nodelay: bool) -> Result<Option<BenchMosquitto>, String> {
+        let Some(binary) = broker::mosquitto_binary() else {
+            return Ok(None);
+        };
+        let dir = tempfile::Builder::new()
+            .prefix("gwbench-mosquitto-")
+            .tempdir()
+            .map_err(|e| format!("scratch directory: {e}"))?;
+        let conf = dir.path().join("mosquitto.conf");
+        let log = dir.path().join("mosquitto.log");
+        let mut last = String::new();
+        // The free port can be taken between the probe and Mosquitto's bind: try a few.
+        for _ in 0..5 {
+            let port = broker::free_port();
+            let text = format!(
+                "# Generated by benches/daemon_e2e.rs; loopback only, never the system's broker.\n\
+                 listener {port} 127.0.0.1\n\
+                 allow_anonymous true\n\
+                 persistence false\n\
+                 log_dest file {log}\n\
+                 log_type error\n\
+                 log_type warning\n\
+                 max_packet_size {MAX_PACKET_SIZE}\n\
+                 max_queued_messages 100000\n\
+                 max_inflight_messages 1000\n\
+                 set_tcp_nodelay {nodelay}\n\
+                 # As root Mosquitto would switch to the user \"mosquitto\"; as any other user this has no effect.\n\
+                 user root\n",
+                log = log.display(),
+            );
+            std::fs::write(&conf, text).map_err(|e| format!("{}: {e}", conf.display()))?;
+            let mut child = Command::new(&binary)
+                .arg("-c")
+                .arg(&conf)
+                .stdin(Stdio::null())
+                .stdout(Stdio::null())
+                .stderr(Stdio::null())
+                .spawn()
+                .map_err(|e| format!("{}: {e}", binary.display()))?;
+            let up = broker::wait_for_port(port, READY);
+            // A failed bind exits at once: the listener that answered is ours only if the child still runs.
+            thread::sleep(Duration::from_millis(20));
+            match child.try_wait() {
+                Ok(None) if up => {
+                    return Ok(Some(BenchMosquitto {
+                        port,
+                        child,
+                        _dir: dir,
+                    }))
+                }
+                _ => {
+                    let _ = child.kill();
+                    let _ = child.wait();
+                    last = std::fs::read_to_string(&log).unwrap_or_default();
+                }
+            }
+        }
+        Err(format!("mosquitto did not start; its log:\n{last}"))
+    }
+}
+
+impl Drop for BenchMosquitto {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
 }
 
 /// What every case needs.
@@ -608,8 +708,9 @@ struct Receiver {
 }
 
 impl Receiver {
-    fn start(port: u16, clock: Clock) -> Result<Receiver, String> {
+    fn start(port: u16, clock: Clock, nodelay: bool) -> Result<Receiver, String> {
         let (client, mut connection) = Client::new(options("gwbench-receiver", port), 10_000);
+        set_nodelay(&mut connection, nodelay);
         let received = Arc::new(AtomicU64::new(0));
         let tally = Arc::new(Mutex::new(Tally::new()));
         let (status_tx, status) = mpsc::channel();
@@ -746,11 +847,12 @@ struct Publisher {
 }
 
 impl Publisher {
-    fn start(port: u16) -> Result<Publisher, String> {
+    fn start(port: u16, nodelay: bool) -> Result<Publisher, String> {
         let mut o = options("gwbench-publisher", port);
         // Enough QoS 1 publishes in flight that the broker's round trip does not pace a QoS 1 run.
         o.set_inflight(1000);
         let (client, mut connection) = Client::new(o, 10_000);
+        set_nodelay(&mut connection, nodelay);
         let stop = Arc::new(AtomicBool::new(false));
         let connected = Arc::new(AtomicBool::new(false));
         let thread = {
@@ -791,6 +893,13 @@ impl Drop for Publisher {
             let _ = t.join();
         }
     }
+}
+
+/// rumqttc leaves Nagle's algorithm on: a small publish may wait for the ACK of the previous one.
+fn set_nodelay(connection: &mut Connection, nodelay: bool) {
+    let mut n = NetworkOptions::new();
+    n.set_tcp_nodelay(nodelay);
+    connection.eventloop.set_network_options(n);
 }
 
 fn options(id: &str, port: u16) -> MqttOptions {
@@ -986,8 +1095,17 @@ impl Drop for Daemon {
     }
 }
 
-/// The `gaugewise` binary cargo built for this bench (release profile), else target/release/gaugewise.
+/// GWBENCH_DAEMON if set (to compare another build), else the `gaugewise` binary cargo built for this bench
+/// (release profile), else target/release/gaugewise.
 fn daemon_binary() -> Result<PathBuf, String> {
+    if let Some(path) = std::env::var_os("GWBENCH_DAEMON") {
+        let path = PathBuf::from(path);
+        return if path.is_file() {
+            Ok(path)
+        } else {
+            Err(format!("GWBENCH_DAEMON={}: no such file", path.display()))
+        };
+    }
     let built = PathBuf::from(env!("CARGO_BIN_EXE_gaugewise"));
     if built.is_file() {
         return Ok(built);

@@ -8,6 +8,7 @@
 pub mod broker;
 pub mod channel;
 pub mod config;
+pub mod demo;
 pub mod estimate;
 pub mod filter;
 pub mod history;

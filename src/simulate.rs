@@ -118,13 +118,16 @@ impl Plant {
                 description: "feed flow",
                 unit: "m3/h",
                 interval: 0.5,
+                // The simulated ARMA(1,1) (ar 0.8, ma -0.3, shock variance 0.25) is exactly an AR(1) state seen
+                // through noise (REFERENCES.md: gamma1 = -phi r, gamma0 = q + (1 + phi^2) r), so the configured
+                // model is the equivalent lag: r = 0.3 * 0.25 / 0.8, q = 1.09 * 0.25 - 1.64 r, tau = -0.5 / ln 0.8.
                 model: ModelSpec {
                     interval: 0.5,
-                    params: ModelParams::Arma {
+                    params: ModelParams::Lag {
                         mean: 12.0,
-                        ar: vec![0.8],
-                        ma: vec![-0.3],
-                        var: 0.25,
+                        tau: -0.5 / 0.8f64.ln(),
+                        state_var: 0.11875,
+                        obs_var: 0.09375,
                     },
                 },
                 process: Process::Arma11 {
@@ -252,6 +255,27 @@ mod tests {
         assert!(ra.windows(2).all(|w| w[0].1.time <= w[1].1.time));
         let dropped = ra.iter().filter(|(_, r)| r.value.is_none()).count();
         assert!(dropped < ra.len() / 10);
+    }
+
+    /// FT-201's configured lag is the simulated ARMA(1,1) in disguise: the ARMA(1,1) implied by the lag's
+    /// (phi, q, r) is the simulated one (ar 0.8, ma -0.3, shock variance 0.25).
+    #[test]
+    fn flow_model_is_the_simulated_arma() {
+        let plant = Plant::brackenfield(0.0, 1);
+        let ModelParams::Lag {
+            tau,
+            state_var,
+            obs_var,
+            ..
+        } = plant.tags[1].model.params
+        else {
+            panic!("FT-201 runs a lag")
+        };
+        let phi = (-0.5 / tau).exp();
+        let (theta, var) = crate::estimate::ar1_noise_to_arma11(phi, state_var, obs_var);
+        assert!((phi - 0.8).abs() < 1e-12);
+        assert!((theta + 0.3).abs() < 1e-12, "{theta}");
+        assert!((var - 0.25).abs() < 1e-12, "{var}");
     }
 
     #[test]
