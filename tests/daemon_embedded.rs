@@ -7,7 +7,8 @@
 
 mod common;
 
-use common::broker::{recv_n, send_signal, Message, TestBroker, TestClient, WAIT};
+use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
+use common::daemon::{epoch_now, wait_status, Daemon};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::OutputMessage;
@@ -15,10 +16,9 @@ use gaugewise::runtime::{self, RunReport};
 use rumqttc::QoS;
 use std::collections::{BTreeMap, HashMap};
 use std::net::{Shutdown, TcpListener, TcpStream};
-use std::path::{Path, PathBuf};
-use std::process::{Child, Command, ExitStatus, Stdio};
+use std::path::Path;
+use std::process::Command;
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::mpsc::Receiver;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -92,81 +92,6 @@ stale_every_s = 0.5
     )
 }
 
-/// The daemon process; killed if a test ends without stopping it.
-struct Daemon {
-    child: Child,
-    log: PathBuf,
-    _dir: tempfile::TempDir,
-}
-
-impl Daemon {
-    fn start(config: &str) -> Daemon {
-        let dir = tempfile::tempdir().expect("scratch dir");
-        let path = dir.path().join("daemon.toml");
-        std::fs::write(&path, config).expect("write config");
-        let log = dir.path().join("daemon.log");
-        let child = Command::new(env!("CARGO_BIN_EXE_gaugewise"))
-            .args(["run", "--config"])
-            .arg(&path)
-            .env("GAUGEWISE_LOG", "info")
-            .env_remove("RUST_LOG")
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(std::fs::File::create(&log).expect("log file"))
-            .spawn()
-            .expect("start gaugewise run");
-        Daemon {
-            child,
-            log,
-            _dir: dir,
-        }
-    }
-
-    fn log(&self) -> String {
-        std::fs::read_to_string(&self.log).unwrap_or_default()
-    }
-
-    /// Waits for the process to exit, at most `timeout`; None if it is still running.
-    fn wait(&mut self, timeout: Duration) -> Option<ExitStatus> {
-        let deadline = Instant::now() + timeout;
-        loop {
-            if let Some(status) = self.child.try_wait().expect("try_wait") {
-                return Some(status);
-            }
-            if Instant::now() >= deadline {
-                return None;
-            }
-            std::thread::sleep(Duration::from_millis(20));
-        }
-    }
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        if self.child.try_wait().ok().flatten().is_none() {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
-        }
-    }
-}
-
-/// Waits for a status message whose `status` field is `want`.
-fn wait_status(rx: &Receiver<Message>, want: &str, timeout: Duration) -> Option<serde_json::Value> {
-    let deadline = Instant::now() + timeout;
-    while let Some(left) = deadline.checked_duration_since(Instant::now()) {
-        match rx.recv_timeout(left) {
-            Ok(m) => {
-                let doc = m.json();
-                if doc["status"] == want {
-                    return Some(doc);
-                }
-            }
-            Err(_) => return None,
-        }
-    }
-    None
-}
-
 /// One input sample: channel, time, value (None: JSON null, a missing sample).
 type Input = (&'static str, f64, Option<f64>);
 
@@ -211,13 +136,6 @@ fn close(a: Option<f64>, b: f64, what: &str) {
             assert!((a - b).abs() <= tol, "{what}: got {a}, expected {b}");
         }
     }
-}
-
-fn epoch_now() -> f64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap()
-        .as_secs_f64()
 }
 
 #[test]

@@ -1,8 +1,9 @@
-//! Helpers shared by the integration tests: fixture loading, tolerant comparison, and (in `broker`) test brokers
-//! and an MQTT client.
+//! Helpers shared by the integration tests: fixture loading, tolerant comparison, (in `broker`) test brokers
+//! and an MQTT client, and (in `daemon`) the `gaugewise run` process.
 #![allow(dead_code)]
 
 pub mod broker;
+pub mod daemon;
 
 use serde_json::Value;
 use std::path::PathBuf;
