@@ -57,21 +57,23 @@ pub struct Reading {
     pub value: Option<f64>,
 }
 
-/// xorshift64* with Box-Muller: small, seedable, good enough for demo noise, and no dependency.
+/// xorshift64* with Box-Muller: small, seedable, good enough for demo and test noise, and no dependency.
 #[derive(Debug, Clone)]
-struct Noise(u64);
+pub struct Noise(u64);
 
 impl Noise {
-    fn new(seed: u64) -> Self {
+    pub fn new(seed: u64) -> Self {
         Noise(seed.max(1))
     }
-    fn uniform(&mut self) -> f64 {
+    /// Uniform on (0, 1).
+    pub fn uniform(&mut self) -> f64 {
         self.0 ^= self.0 >> 12;
         self.0 ^= self.0 << 25;
         self.0 ^= self.0 >> 27;
         ((self.0.wrapping_mul(0x2545_F491_4F6C_DD1D) >> 11) as f64 + 0.5) / (1u64 << 53) as f64
     }
-    fn normal(&mut self) -> f64 {
+    /// Standard normal.
+    pub fn normal(&mut self) -> f64 {
         let (u, v) = (self.uniform(), self.uniform());
         (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
     }

@@ -3,6 +3,7 @@
 
 use gaugewise::filter::{self, Filter, StepKind};
 use gaugewise::model::{ModelParams, ModelSpec};
+use gaugewise::simulate::Noise;
 use nalgebra::{DMatrix, SymmetricEigen};
 use proptest::prelude::*;
 use proptest::test_runner::TestCaseError;
@@ -118,21 +119,6 @@ fn assert_psd(cov: &[f64], noise: f64, what: &str) {
     assert!(min >= -1e-9 * scale, "{what}: eigenvalue {min} < 0 in {m}");
 }
 
-/// A deterministic noise source for the long runs (xorshift64*, Box-Muller); no dependency needed for a test.
-struct Noise(u64);
-impl Noise {
-    fn uniform(&mut self) -> f64 {
-        self.0 ^= self.0 >> 12;
-        self.0 ^= self.0 << 25;
-        self.0 ^= self.0 >> 27;
-        ((self.0.wrapping_mul(0x2545_F491_4F6C_DD1D) >> 11) as f64 + 0.5) / (1u64 << 53) as f64
-    }
-    fn normal(&mut self) -> f64 {
-        let (u, v) = (self.uniform(), self.uniform());
-        (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
-    }
-}
-
 #[test]
 fn covariance_stays_symmetric_psd_over_millions_of_steps() {
     // Irregular sampling (dt from 0.1 to 3 intervals), 1% missing, and a signal far from the model's
@@ -145,7 +131,7 @@ fn covariance_stays_symmetric_psd_over_millions_of_steps() {
     ];
     for spec in &specs {
         let mut f = Filter::new(spec).unwrap();
-        let mut noise = Noise(0x9E37_79B9_7F4A_7C15);
+        let mut noise = Noise::new(0x9E37_79B9_7F4A_7C15);
         let discrete = matches!(spec.params, ModelParams::Arma { .. });
         for i in 0..2_000_000u64 {
             let dt = if discrete {
