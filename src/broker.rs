@@ -433,6 +433,8 @@ impl RelayJob {
 
     async fn relay(self, mut stop: oneshot::Receiver<()>, ready: mpsc::Sender<Result<(), String>>) {
         let (client, mut eventloop) = AsyncClient::new(self.options.clone(), 10_000);
+        // Same socket options as the daemon (TCP_NODELAY), so the comparison is fair.
+        eventloop.set_network_options(crate::runtime::nodelay());
         // Messages the request channel had no room for, in arrival order. Only this task drains that channel
         // (by polling the event loop), so waiting on it here would never end; the backlog is retried after
         // every event instead.

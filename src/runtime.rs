@@ -129,6 +129,13 @@ pub struct Pipeline {
     pub output: OutputTopic,
 }
 
+/// Socket options for our MQTT connections: TCP_NODELAY on.
+pub fn nodelay() -> rumqttc::NetworkOptions {
+    let mut n = rumqttc::NetworkOptions::new();
+    n.set_tcp_nodelay(true);
+    n
+}
+
 /// What a run did, once it has stopped.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct RunReport {
@@ -234,7 +241,10 @@ pub async fn run(
     shutdown: impl Future<Output = ()>,
 ) -> Result<RunReport, RuntimeError> {
     let options = mqtt_options(&settings)?;
-    let (client, eventloop) = AsyncClient::new(options, settings.request_queue.max(1));
+    let (client, mut eventloop) = AsyncClient::new(options, settings.request_queue.max(1));
+    // rumqttc leaves Nagle's algorithm on: small outputs then wait for the peer's delayed ACK (measured: 40-50 ms
+    // tail latency in benches/daemon_e2e.rs). Every output is a small message that should leave at once.
+    eventloop.set_network_options(nodelay());
     let workers = settings.workers.max(1);
     let shared = Arc::new(Shared {
         counters: Counters::new(),
