@@ -7,11 +7,26 @@
 //!
 //! `Channel::stale(now)` is the daemon's answer for a channel that has gone quiet: the filter's forecast from the
 //! last sample to `now`, with its growing uncertainty, computed without touching the state, so a stale report
-//! never changes what the next real sample does.
+//! never changes what the next real sample does. [`Channel::mark_stale`] is the same forecast plus the `stale`
+//! flag.
+//!
+//! Every sample also goes through the channel's fault detectors (`detect`): they decide beforehand whether the
+//! value may update the state (robust update), and afterwards which flags are raised or cleared.
 
+use crate::detect::{Admit, DesignError, Detectors, FlagDesign, FlagUpdate};
 use crate::filter::{Filter, Step, StepKind};
 use crate::model::{ModelError, ModelSpec};
 use serde::Serialize;
+use thiserror::Error;
+
+/// Why a channel could not be built.
+#[derive(Debug, Error, Clone, PartialEq)]
+pub enum ChannelError {
+    #[error(transparent)]
+    Model(#[from] ModelError),
+    #[error("flags.{0}")]
+    Flags(#[from] DesignError),
+}
 
 /// How a sample was treated.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -29,6 +44,9 @@ pub enum SampleStatus {
     Rejected,
     /// No sample for longer than the staleness limit: a forecast from the last sample, state untouched.
     Stale,
+    /// A value that did not update the estimate: a spike, outside the engineering range, or from a channel
+    /// flagged stuck (the flags say which). Time advances as for a missing sample.
+    Withheld,
 }
 
 impl SampleStatus {
@@ -40,6 +58,7 @@ impl SampleStatus {
             SampleStatus::Duplicate => "duplicate",
             SampleStatus::Rejected => "rejected",
             SampleStatus::Stale => "stale",
+            SampleStatus::Withheld => "withheld",
         }
     }
 }
@@ -53,6 +72,8 @@ pub struct Outcome {
     pub status: SampleStatus,
     /// The filter's account; None for dropped samples.
     pub step: Option<Step>,
+    /// Flags active after this sample, and those it raised or cleared.
+    pub flags: FlagUpdate,
 }
 
 impl Outcome {
@@ -63,21 +84,33 @@ impl Outcome {
     }
 }
 
-/// A channel's filter plus ordering state.
+/// A channel's filter, detectors and ordering state.
 #[derive(Debug, Clone)]
 pub struct Channel {
     spec: ModelSpec,
     filter: Filter,
+    detectors: Detectors,
     last_time: Option<f64>,
 }
 
 impl Channel {
-    pub fn new(spec: &ModelSpec) -> Result<Self, ModelError> {
+    /// A channel with the default flag design.
+    pub fn new(spec: &ModelSpec) -> Result<Self, ChannelError> {
+        Channel::with_flags(spec, &FlagDesign::default())
+    }
+
+    /// A channel whose flags follow `design`, resolved at the model's nominal interval.
+    pub fn with_flags(spec: &ModelSpec, design: &FlagDesign) -> Result<Self, ChannelError> {
         Ok(Self {
             filter: Filter::new(spec)?,
+            detectors: Detectors::new(design.resolve(spec.interval)?),
             spec: spec.clone(),
             last_time: None,
         })
+    }
+
+    pub fn detectors(&self) -> &Detectors {
+        &self.detectors
     }
 
     pub fn spec(&self) -> &ModelSpec {
@@ -113,17 +146,33 @@ impl Channel {
                 estimate_var: f.signal_var,
                 loglik: 0.0,
             }),
+            flags: FlagUpdate {
+                active: self.detectors.active(),
+                ..FlagUpdate::default()
+            },
         })
+    }
+
+    /// [`Channel::stale`], and the `stale` flag raised (once) at `now`. The filter state is untouched.
+    pub fn mark_stale(&mut self, now: f64) -> Option<Outcome> {
+        let mut outcome = self.stale(now)?;
+        outcome.flags = self.detectors.on_stale(now);
+        Some(outcome)
     }
 
     /// Takes one sample at time `t` (seconds); `None` or NaN is a missing value.
     pub fn on_sample(&mut self, t: f64, value: Option<f64>) -> Outcome {
         let raw = value.unwrap_or(f64::NAN);
+        let flags = FlagUpdate {
+            active: self.detectors.active(),
+            ..FlagUpdate::default()
+        };
         let dropped = |status| Outcome {
             time: t,
             raw,
             status,
             step: None,
+            flags,
         };
         if !t.is_finite() || raw.is_infinite() {
             return dropped(SampleStatus::Rejected);
@@ -135,17 +184,22 @@ impl Channel {
             None => 0.0,
         };
         self.last_time = Some(t);
-        let step = self.filter.step(dt, Some(raw));
-        let status = if step.kind == StepKind::Missing {
-            SampleStatus::Missing
-        } else {
-            SampleStatus::Ok
+        let step = match self.detectors.admit(value) {
+            Admit::Filter(gate) => self.filter.step_gated(dt, Some(raw), gate),
+            Admit::Withhold => self.filter.step(dt, None),
         };
+        let status = match step.kind {
+            StepKind::Missing if raw.is_nan() => SampleStatus::Missing,
+            StepKind::Missing | StepKind::Withheld => SampleStatus::Withheld,
+            _ => SampleStatus::Ok,
+        };
+        let flags = self.detectors.observe(t, value, &step);
         Outcome {
             time: t,
             raw,
             status,
             step: Some(step),
+            flags,
         }
     }
 }

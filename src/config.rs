@@ -23,6 +23,7 @@
 
 mod daemon;
 mod env;
+mod flags;
 
 pub use daemon::{
     check_filter, check_pointer, default_status_topic, BrokerConfig, ChannelTemplate, DaemonConfig,
@@ -30,6 +31,7 @@ pub use daemon::{
     TimeFormat, TimingConfig, TlsConfig, MAX_PACKET_LIMIT,
 };
 pub use env::{EnvOverride, ENV_NOT_CONFIG, ENV_PREFIX, ENV_SEPARATOR};
+pub use flags::FlagRules;
 
 use crate::model::{ModelError, ModelKind, ModelParams, ModelSpec};
 use globset::{Glob, GlobMatcher};
@@ -141,6 +143,8 @@ pub struct ChannelConfig {
     pub overrides: Vec<Override>,
     /// Compiled `overrides[i].pattern`, kept beside the public fields so lookups do not recompile globs.
     matchers: Vec<GlobMatcher>,
+    /// Each channel's fault-flag design (`[flags]`).
+    pub flags: FlagRules,
 }
 
 /// A model for the channels whose name matches `pattern` (a globset glob).
@@ -153,7 +157,9 @@ pub struct Override {
 impl PartialEq for ChannelConfig {
     fn eq(&self, other: &Self) -> bool {
         // The matchers are derived from the patterns, so they need no comparison.
-        self.default == other.default && self.overrides == other.overrides
+        self.default == other.default
+            && self.overrides == other.overrides
+            && self.flags == other.flags
     }
 }
 
@@ -168,7 +174,13 @@ impl ChannelConfig {
             default,
             overrides,
             matchers,
+            flags: FlagRules::default(),
         })
+    }
+
+    /// The fault-flag design for `channel`.
+    pub fn flags_for(&self, channel: &str) -> &crate::detect::FlagDesign {
+        self.flags.design_for(channel)
     }
 
     /// The model of the first override whose pattern matches `channel`, else the default.
@@ -321,6 +333,10 @@ impl Config {
             matchers.push(glob.compile_matcher());
             overrides.push(Override { pattern, model });
         }
+        let intervals: Vec<f64> = std::iter::once(default.interval)
+            .chain(overrides.iter().map(|o: &Override| o.model.interval))
+            .collect();
+        let flags = flags::rules(raw.flags.as_ref(), &intervals, ctx)?;
         let inputs = raw
             .inputs
             .iter()
@@ -332,6 +348,7 @@ impl Config {
                 default,
                 overrides,
                 matchers,
+                flags,
             },
             broker: raw
                 .broker
@@ -619,6 +636,7 @@ struct RawConfig {
     status: Option<daemon::RawStatus>,
     timing: Option<daemon::RawTiming>,
     limits: Option<daemon::RawLimits>,
+    flags: Option<flags::RawFlags>,
 }
 
 #[derive(Debug, Default, Deserialize)]

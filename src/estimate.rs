@@ -365,7 +365,7 @@ impl Objective<'_> {
             }
             StepKind::Diffuse => diffuse_ll += st.loglik,
             StepKind::Degenerate => degenerate = true,
-            StepKind::Missing => {}
+            StepKind::Missing | StepKind::Withheld => {}
         })
         .ok()?;
         if degenerate || m == 0 {

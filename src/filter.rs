@@ -41,6 +41,25 @@ pub enum StepKind {
     Missing,
     /// Forecast variance was zero (a model with no noise at all): the value could not be weighed.
     Degenerate,
+    /// An outlier held back by the step's [`Gate`]: prediction only, but the innovation is reported.
+    Withheld,
+}
+
+/// Robust-update rule for one step (`detect` decides it per sample; plain [`Kalman::step`] uses [`Gate::NONE`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Gate {
+    /// |standardised innovation| beyond which a value is an outlier and does not update the state; infinite: none.
+    pub limit: f64,
+    /// Sign (+1 or -1) of an outlier that is a confirmed level shift: instead of being withheld it re-acquires,
+    /// the forecast variance being inflated to the squared innovation before the update. 0: no re-acquisition.
+    pub reacquire: f64,
+}
+
+impl Gate {
+    pub const NONE: Gate = Gate {
+        limit: f64::INFINITY,
+        reacquire: 0.0,
+    };
 }
 
 /// The filter's account of one sample.
@@ -150,11 +169,21 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
     }
 
     /// One sample `dt` seconds after the previous one (ignored for the first sample); `None` or NaN is missing.
+    #[inline]
     pub fn step(&mut self, dt: f64, y: Option<f64>) -> Step {
+        self.step_gated(dt, y, Gate::NONE)
+    }
+
+    /// [`Kalman::step`] under a robust-update [`Gate`]. Outliers are judged only once the state is proper (a
+    /// diffuse step has no forecast variance to judge by).
+    pub fn step_gated(&mut self, dt: f64, y: Option<f64>, gate: Gate) -> Step {
         let dt = self.model.step_key(dt);
         if let (Some(st), Some(y)) = (self.steady, y) {
             if dt == self.cached_dt && !y.is_nan() {
-                return self.step_steady(&st, y);
+                if let Some(step) = self.step_steady(&st, y, gate) {
+                    return step;
+                }
+                return self.observe(y, false, gate);
             }
         }
         self.steady = None;
@@ -163,6 +192,12 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             self.predict(dt);
         }
         self.started = true;
+        self.observe(y.unwrap_or(f64::NAN), same_dt, gate)
+    }
+
+    /// The update half of a step, from the predicted state; `y` NaN is missing.
+    #[inline]
+    fn observe(&mut self, y: f64, same_dt: bool, gate: Gate) -> Step {
         let z = self.obs.z;
         let h = self.obs.h;
         let predicted = z.dot(&self.a) + self.obs.d;
@@ -175,7 +210,7 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             0.0
         };
         let y = match y {
-            Some(v) if !v.is_nan() => v,
+            v if !v.is_nan() => v,
             _ => {
                 // Convergence is judged only between consecutive observed steps.
                 self.p_pred_prev = SMatrix::repeat(f64::NAN);
@@ -210,7 +245,34 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         }
         // One division serves the gain, the standardised innovation and the likelihood (divisions are the slow
         // part of a 1-state step).
-        let inv_f = 1.0 / f;
+        let mut inv_f = 1.0 / f;
+        let standardized = v * inv_f.sqrt();
+        let (mut m, mut f, mut same_dt) = (m, f, same_dt);
+        if standardized.abs() > gate.limit {
+            if standardized.signum() != gate.reacquire {
+                self.p_pred_prev = SMatrix::repeat(f64::NAN);
+                return Step {
+                    kind: StepKind::Withheld,
+                    predicted,
+                    predicted_var: f,
+                    innovation: v,
+                    standardized,
+                    estimate: predicted,
+                    estimate_var: signal_var,
+                    loglik: 0.0,
+                };
+            }
+            // Re-acquire: grow the variance along the observed direction until F equals v^2, so the update
+            // believes the new level about as much as the data say.
+            let zz = z.dot(&z);
+            let e = z / zz;
+            self.p += e * e.transpose() * (v * v - f).max(0.0);
+            m = self.p * z;
+            f = z.dot(&m) + h;
+            inv_f = 1.0 / f;
+            same_dt = false;
+            self.p_pred_prev = SMatrix::repeat(f64::NAN);
+        }
         let k = m * inv_f;
         if same_dt && !self.diffuse {
             let tol = 1e-12 * self.p.abs().max();
@@ -250,24 +312,33 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             predicted,
             predicted_var: f,
             innovation: v,
-            standardized: v * inv_f.sqrt(),
+            standardized,
             estimate: z.dot(&self.a) + self.obs.d,
             estimate_var,
             loglik: -0.5 * (LN_2PI + f.ln() + v * v * inv_f),
         }
     }
 
-    /// A step of the converged filter: same dt as before, value present. P is unchanged by construction.
+    /// A step of the converged filter: same dt as before, value present. P is unchanged by construction. An
+    /// outlier under `gate` leaves the steady mode with the state predicted and returns None: the full update
+    /// then judges it.
     #[inline]
-    fn step_steady(&mut self, st: &Steady<N>, y: f64) -> Step {
-        let tr = &self.cached;
+    fn step_steady(&mut self, st: &Steady<N>, y: f64, gate: Gate) -> Option<Step> {
+        let tr = self.cached;
         self.a = tr.t * self.a + tr.c;
         let z = self.obs.z;
         let predicted = z.dot(&self.a) + self.obs.d;
         let v = y - predicted;
-        self.a += st.gain * v;
         let standardized = v * st.inv_sqrt_f;
-        Step {
+        if standardized.abs() > gate.limit {
+            // self.p holds the filtered covariance of the steady state; predict it like the state.
+            self.p = tr.t * self.p * tr.t.transpose() + tr.q;
+            self.steady = None;
+            self.p_pred_prev = SMatrix::repeat(f64::NAN);
+            return None;
+        }
+        self.a += st.gain * v;
+        Some(Step {
             kind: StepKind::Observed,
             predicted,
             predicted_var: st.f,
@@ -276,7 +347,7 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
             estimate: z.dot(&self.a) + self.obs.d,
             estimate_var: st.estimate_var,
             loglik: st.ll_const - 0.5 * standardized * standardized,
-        }
+        })
     }
 
     fn update_diffuse(
@@ -436,6 +507,10 @@ impl Filter {
         each_filter!(self, k => k.step(dt, y))
     }
 
+    pub fn step_gated(&mut self, dt: f64, y: Option<f64>, gate: Gate) -> Step {
+        each_filter!(self, k => k.step_gated(dt, y, gate))
+    }
+
     pub fn forecast(&self, dt: f64) -> Forecast {
         each_filter!(self, k => k.forecast(dt))
     }
@@ -489,7 +564,7 @@ pub fn run<F: FnMut(usize, &Step)>(
         prev = t;
         lik.loglik += step.loglik;
         match step.kind {
-            StepKind::Missing => {}
+            StepKind::Missing | StepKind::Withheld => {}
             StepKind::Diffuse => {
                 lik.n_obs += 1;
                 lik.n_diffuse += 1;

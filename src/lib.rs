@@ -7,13 +7,17 @@
 
 pub mod broker;
 pub mod channel;
+pub mod checkpoint;
 pub mod config;
 pub mod demo;
+pub mod detect;
 pub mod estimate;
 pub mod filter;
 pub mod history;
+pub mod html_report;
 pub mod ingest;
 pub mod model;
+pub mod notify;
 pub mod publish;
 pub mod replay;
 pub mod report;

@@ -58,7 +58,7 @@ enum Command {
         long_about = "Run a config over a history through the streaming filter, exactly as the daemon \
         would process the samples: every value column (or every channel of a long time,channel,value file) is a \
         channel, given the model its name matches in the config, and samples are fed in time order.\n\n\
-        Output CSV columns: time,channel,raw,estimate,std,innovation,std_innovation,status. `time` is in seconds \
+        Output CSV columns: time,channel,raw,estimate,std,innovation,std_innovation,status,flags. `time` is in seconds \
         (epoch seconds whatever the input's form, or the sample index without a time column). Empty cells mean no \
         value; std is `inf` while a diffuse model is still initialising. A summary goes to stderr."
     )]
@@ -111,6 +111,9 @@ struct FitArgs {
     /// Also print the best model as a [[channels.override]] block to paste into a config.
     #[arg(long)]
     emit_config: bool,
+    /// Also write a self-contained HTML report (plots, comparison table, configuration) to this file.
+    #[arg(long, value_name = "FILE.html")]
+    report: Option<PathBuf>,
 }
 
 #[derive(Debug, clap::Args)]
@@ -300,6 +303,13 @@ fn fit(args: &FitArgs) -> Result<(), Failure> {
         }
     }
     out.flush().map_err(other)?;
+    if let Some(path) = &args.report {
+        let html =
+            gaugewise::html_report::fit_report(&series, &cmp, interval, &source).map_err(other)?;
+        std::fs::write(path, html)
+            .with_context(|| format!("cannot write the report {}", path.display()))
+            .map_err(other)?;
+    }
     if config == Some(None) {
         return Err(other(anyhow!(
             "no candidate model converged for '{}', so there is no config to emit",

@@ -7,7 +7,7 @@
 //!
 //! ```text
 //! {"channel":"TT-101","time":1772409600.0,"estimate":72.07,"std":0.18,"raw":72.0,"innovation":-0.5,
-//!  "std_innovation":-0.96,"status":"ok","model":"lag"}
+//!  "std_innovation":-0.96,"status":"ok","flags":[],"model":"lag"}
 //! ```
 //!
 //! - `time`: epoch seconds of the sample (the payload's time, else the receive time), as a JSON number.
@@ -15,13 +15,24 @@
 //! - `raw`: the value as received; `null` for a missing sample.
 //! - `innovation`, `std_innovation`: the value minus its one-step forecast, and that divided by the forecast's
 //!   standard deviation (|std_innovation| above 3 is rare for a healthy sensor).
-//! - `status`: `ok`, `missing`, `late`, `duplicate`, `rejected` or `stale` (`channel::SampleStatus::as_str`).
-//!   Late, duplicate and rejected samples never touch the filter; their `estimate` and `std` are `null`.
+//! - `status`: `ok`, `missing`, `withheld`, `late`, `duplicate`, `rejected` or `stale`
+//!   (`channel::SampleStatus::as_str`). Late, duplicate and rejected samples never touch the filter; their
+//!   `estimate` and `std` are `null`. A withheld value (a spike, out of range, a stuck transmitter) did not update
+//!   the estimate, which is then a prediction.
+//! - `flags`: the fault flags active after this sample, e.g. `["spike","bias"]` (`detect::FlagKind`).
 //! - `model`: the channel's model (`level`, `lag`, `trend`, `arma(p,q)`).
 //!
 //! A number that is not finite (a missing raw value, the infinite std of a model still fixing its initial state) is
 //! `null`, never `NaN`: JSON has no NaN. Finite numbers are written in the shortest form that reads back to the same
 //! f64, bit for bit.
+//!
+//! Flag changes go to a second, retained topic per channel (`output.flags_topic`), so a subscriber that connects
+//! later still sees what is raised:
+//!
+//! ```text
+//! {"channel":"TT-101","time":1772409600.0,"raised":["bias"],"cleared":[],
+//!  "active":[{"kind":"bias","severity":"high","since":1772409600.0}]}
+//! ```
 //!
 //! Output topics come from a template such as `brackenfield/clean/{channel}`. A channel name may contain `/` (the
 //! topic then has more levels, which subscribers can filter with wildcards); a name with `+`, `#` or NUL, or a topic
@@ -29,6 +40,7 @@
 //! longer be the name engineers search for, and `ingest` never produces such names.
 
 use crate::channel::Outcome;
+use crate::detect::{Detectors, FlagSet, FlagUpdate, Severity};
 use crate::ingest::{split_template, write_escaped, TemplatePiece, MAX_TOPIC_BYTES};
 use crate::model::ModelKind;
 use serde::{Deserialize, Serialize, Serializer};
@@ -159,6 +171,7 @@ struct Payload<'a> {
     innovation: f64,
     std_innovation: f64,
     status: &'static str,
+    flags: FlagSet,
     model: Label,
 }
 
@@ -175,6 +188,7 @@ pub fn write_payload(buf: &mut Vec<u8>, channel: &str, model: ModelKind, outcome
         innovation: step.map_or(f64::NAN, |s| s.innovation),
         std_innovation: step.map_or(f64::NAN, |s| s.standardized),
         status: outcome.status.as_str(),
+        flags: outcome.flags.active,
         model: Label(model),
     };
     // Serialising plain numbers and strings into a Vec cannot fail; serde_json writes non-finite f64 as null.
@@ -193,10 +207,85 @@ pub struct OutputMessage {
     pub innovation: Option<f64>,
     pub std_innovation: Option<f64>,
     pub status: String,
+    pub flags: Vec<String>,
     pub model: String,
 }
 
 impl OutputMessage {
+    pub fn parse(payload: &[u8]) -> Result<Self, serde_json::Error> {
+        serde_json::from_slice(payload)
+    }
+}
+
+#[derive(Serialize)]
+struct ActiveFlag {
+    kind: &'static str,
+    severity: Severity,
+    since: f64,
+}
+
+/// The active flags with their severity and raise time, serialised straight from the detectors.
+struct Active<'a>(&'a Detectors);
+
+impl Serialize for Active<'_> {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        let d = self.0;
+        s.collect_seq(d.active().iter().map(|k| ActiveFlag {
+            kind: k.as_str(),
+            severity: d.settings().severity(k),
+            since: d.since(k),
+        }))
+    }
+}
+
+#[derive(Serialize)]
+struct FlagsPayload<'a> {
+    channel: &'a str,
+    time: f64,
+    raised: FlagSet,
+    cleared: FlagSet,
+    active: Active<'a>,
+}
+
+/// Writes the retained flag-change message for a sample at `time` whose `update` raised or cleared flags.
+pub fn write_flags_payload(
+    buf: &mut Vec<u8>,
+    channel: &str,
+    time: f64,
+    update: &FlagUpdate,
+    detectors: &Detectors,
+) {
+    buf.clear();
+    let payload = FlagsPayload {
+        channel,
+        time,
+        raised: update.raised,
+        cleared: update.cleared,
+        active: Active(detectors),
+    };
+    serde_json::to_writer(&mut *buf, &payload).expect("writing JSON into a Vec");
+}
+
+/// A flag-change message read back.
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FlagsMessage {
+    pub channel: String,
+    pub time: f64,
+    pub raised: Vec<String>,
+    pub cleared: Vec<String>,
+    pub active: Vec<ActiveFlagMessage>,
+}
+
+#[derive(Debug, Clone, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ActiveFlagMessage {
+    pub kind: String,
+    pub severity: String,
+    pub since: f64,
+}
+
+impl FlagsMessage {
     pub fn parse(payload: &[u8]) -> Result<Self, serde_json::Error> {
         serde_json::from_slice(payload)
     }
@@ -255,10 +344,11 @@ mod tests {
             raw: 72.0,
             status: SampleStatus::Ok,
             step: Some(step(72.07, 0.0324, -0.5, -0.96)),
+            flags: FlagUpdate::default(),
         };
         assert_eq!(
             payload("TT-101", ModelKind::Lag, &o),
-            r#"{"channel":"TT-101","time":1772409600.0,"estimate":72.07,"std":0.18,"raw":72.0,"innovation":-0.5,"std_innovation":-0.96,"status":"ok","model":"lag"}"#
+            r#"{"channel":"TT-101","time":1772409600.0,"estimate":72.07,"std":0.18,"raw":72.0,"innovation":-0.5,"std_innovation":-0.96,"status":"ok","flags":[],"model":"lag"}"#
         );
     }
 
@@ -269,30 +359,33 @@ mod tests {
             raw: f64::NAN,
             status: SampleStatus::Missing,
             step: Some(step(1.5, 0.25, f64::NAN, f64::NAN)),
+            flags: FlagUpdate::default(),
         };
         assert_eq!(
             payload("FT-201", ModelKind::Arma { p: 2, q: 1 }, &missing),
-            r#"{"channel":"FT-201","time":1772409610.25,"estimate":1.5,"std":0.5,"raw":null,"innovation":null,"std_innovation":null,"status":"missing","model":"arma(2,1)"}"#
+            r#"{"channel":"FT-201","time":1772409610.25,"estimate":1.5,"std":0.5,"raw":null,"innovation":null,"std_innovation":null,"status":"missing","flags":[],"model":"arma(2,1)"}"#
         );
         let diffuse = Outcome {
             time: 0.0,
             raw: 3.0,
             status: SampleStatus::Ok,
             step: Some(step(3.0, f64::INFINITY, f64::NAN, f64::NAN)),
+            flags: FlagUpdate::default(),
         };
         assert_eq!(
             payload("LT-301", ModelKind::Trend, &diffuse),
-            r#"{"channel":"LT-301","time":0.0,"estimate":3.0,"std":null,"raw":3.0,"innovation":null,"std_innovation":null,"status":"ok","model":"trend"}"#
+            r#"{"channel":"LT-301","time":0.0,"estimate":3.0,"std":null,"raw":3.0,"innovation":null,"std_innovation":null,"status":"ok","flags":[],"model":"trend"}"#
         );
         let late = Outcome {
             time: 5.0,
             raw: f64::NEG_INFINITY,
             status: SampleStatus::Rejected,
             step: None,
+            flags: FlagUpdate::default(),
         };
         assert_eq!(
             payload("a\"b\\c/d", ModelKind::Level, &late),
-            r#"{"channel":"a\"b\\c/d","time":5.0,"estimate":null,"std":null,"raw":null,"innovation":null,"std_innovation":null,"status":"rejected","model":"level"}"#
+            r#"{"channel":"a\"b\\c/d","time":5.0,"estimate":null,"std":null,"raw":null,"innovation":null,"std_innovation":null,"status":"rejected","flags":[],"model":"level"}"#
         );
     }
 
@@ -315,6 +408,7 @@ mod tests {
                 raw: y,
                 status: SampleStatus::Ok,
                 step: Some(step(x, y.abs(), -x, y)),
+                flags: FlagUpdate::default(),
             };
             let mut buf = Vec::new();
             write_payload(&mut buf, "TT-101", ModelKind::Lag, &o);
@@ -341,12 +435,14 @@ mod tests {
             SampleStatus::Duplicate,
             SampleStatus::Rejected,
             SampleStatus::Stale,
+            SampleStatus::Withheld,
         ] {
             let o = Outcome {
                 time: 1.0,
                 raw: f64::NAN,
                 status,
                 step: None,
+                flags: FlagUpdate::default(),
             };
             let m = OutputMessage::parse(payload("x", ModelKind::Level, &o).as_bytes()).unwrap();
             assert_eq!(m.status, status.as_str());

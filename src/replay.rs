@@ -9,12 +9,12 @@
 //! sample index when the file has no time column), with at most 3 decimals. Numbers use Rust's shortest exact form.
 //! Empty cells mean "no value": `raw` of a missing sample, `estimate`/`std` of a dropped one (late, duplicate,
 //! rejected), `innovation` when there was no observation update, `std_innovation` also while a diffuse state is
-//! being initialised. `std` is `inf` until a diffuse model has seen enough values to pin its level down.
+//! being initialised. `std` is `inf` until a diffuse model has seen enough values to pin its level down. `flags` is
+//! the set of fault flags active after the sample, `|`-separated (`spike|bias`), empty when none.
 
-use crate::channel::{Channel, Outcome, SampleStatus};
+use crate::channel::{Channel, ChannelError, Outcome, SampleStatus};
 use crate::config::ChannelConfig;
 use crate::history::Series;
-use crate::model::ModelError;
 use std::cmp::{Ordering, Reverse};
 use std::collections::BinaryHeap;
 use std::fmt;
@@ -24,11 +24,11 @@ use thiserror::Error;
 /// Why a replay could not start.
 #[derive(Debug, Error)]
 pub enum ReplayError {
-    #[error("channel '{channel}': its configured model is unusable: {source}")]
+    #[error("channel '{channel}': its configuration is unusable: {source}")]
     Model {
         channel: String,
         #[source]
-        source: ModelError,
+        source: ChannelError,
     },
     #[error("two input series are both called '{0}'; channel names must be unique")]
     DuplicateChannel(String),
@@ -51,6 +51,10 @@ pub struct Summary {
     pub late: usize,
     pub duplicate: usize,
     pub rejected: usize,
+    /// Values that did not update the estimate (spikes, out of range, stuck).
+    pub withheld: usize,
+    /// Flags raised, all kinds together.
+    pub flags_raised: usize,
 }
 
 impl Summary {
@@ -64,6 +68,7 @@ impl Summary {
             SampleStatus::Rejected => self.rejected += 1,
             // A replay has no wall clock, so it never reports a channel stale; counted with the missing if it did.
             SampleStatus::Stale => self.missing += 1,
+            SampleStatus::Withheld => self.withheld += 1,
         }
     }
 
@@ -89,6 +94,12 @@ impl fmt::Display for Summary {
                 " ({} late, {} duplicate, {} unusable)",
                 self.late, self.duplicate, self.rejected
             )?;
+        }
+        if self.withheld > 0 {
+            write!(f, ", {} withheld", self.withheld)?;
+        }
+        if self.flags_raised > 0 {
+            write!(f, ", {} flag(s) raised", self.flags_raised)?;
         }
         Ok(())
     }
@@ -182,8 +193,8 @@ impl<'a> Replay<'a> {
             if series[..i].iter().any(|o| o.name == s.name) {
                 return Err(ReplayError::DuplicateChannel(s.name.clone()));
             }
-            let channel =
-                Channel::new(config.model_for(&s.name)).map_err(|e| ReplayError::Model {
+            let channel = Channel::with_flags(config.model_for(&s.name), config.flags_for(&s.name))
+                .map_err(|e| ReplayError::Model {
                     channel: s.name.clone(),
                     source: e,
                 })?;
@@ -219,6 +230,7 @@ impl<'a> Iterator for Replay<'a> {
         let s = &self.series[i];
         let outcome = self.channels[i].on_sample(s.times[k], Some(s.values[k]));
         self.summary.count(outcome.status);
+        self.summary.flags_raised += outcome.flags.raised.len();
         Some(Row {
             channel: &s.name,
             outcome,
@@ -227,7 +239,7 @@ impl<'a> Iterator for Replay<'a> {
 }
 
 /// Column names of [`write_csv`]'s output.
-pub const CSV_HEADER: [&str; 8] = [
+pub const CSV_HEADER: [&str; 9] = [
     "time",
     "channel",
     "raw",
@@ -236,6 +248,7 @@ pub const CSV_HEADER: [&str; 8] = [
     "innovation",
     "std_innovation",
     "status",
+    "flags",
 ];
 
 /// Seconds with at most 3 decimals and no trailing zeros: `1772409610`, `1772409610.25`.
@@ -262,7 +275,7 @@ fn cell(x: f64) -> String {
 }
 
 /// The CSV fields of one row, in [`CSV_HEADER`] order.
-pub fn csv_fields(row: &Row) -> [String; 8] {
+pub fn csv_fields(row: &Row) -> [String; 9] {
     let o = &row.outcome;
     let (estimate, innovation, standardized) = match &o.step {
         Some(s) => (s.estimate, s.innovation, s.standardized),
@@ -277,6 +290,7 @@ pub fn csv_fields(row: &Row) -> [String; 8] {
         cell(innovation),
         cell(standardized),
         o.status.as_str().to_string(),
+        o.flags.active.to_string(),
     ]
 }
 
@@ -387,7 +401,7 @@ mod tests {
         let lines: Vec<&str> = text.lines().collect();
         assert_eq!(
             lines[0],
-            "time,channel,raw,estimate,std,innovation,std_innovation,status"
+            "time,channel,raw,estimate,std,innovation,std_innovation,status,flags"
         );
         assert_eq!(lines.len(), 6);
         let cells = |l: &str| -> Vec<String> {

@@ -127,6 +127,8 @@ struct Refusal {
 pub struct Pipeline {
     pub router: Router,
     pub output: OutputTopic,
+    /// Retained flag-change messages.
+    pub flags: OutputTopic,
 }
 
 /// Socket options for our MQTT connections: TCP_NODELAY on.
@@ -273,6 +275,7 @@ pub async fn run(
             shared.clone(),
             channels.clone(),
             pipeline.output.clone(),
+            pipeline.flags.clone(),
             client.clone(),
         );
         worker_tasks.push(tokio::spawn(worker.run(rx, stop_rx.clone())));
@@ -529,6 +532,8 @@ struct ChannelState {
     name: String,
     channel: Channel,
     topic: String,
+    /// Where this channel's flag changes go.
+    flags_topic: String,
     /// Wall-clock receive time of the last accepted sample.
     last_received: f64,
 }
@@ -539,6 +544,7 @@ struct Worker {
     shared: Arc<Shared>,
     config: Arc<ChannelConfig>,
     output: OutputTopic,
+    flags: OutputTopic,
     client: AsyncClient,
     index: HashMap<String, usize>,
     channels: Vec<ChannelState>,
@@ -551,6 +557,7 @@ impl Worker {
         shared: Arc<Shared>,
         config: Arc<ChannelConfig>,
         output: OutputTopic,
+        flags: OutputTopic,
         client: AsyncClient,
     ) -> Self {
         let s = &shared.settings;
@@ -563,6 +570,7 @@ impl Worker {
             shared,
             config,
             output,
+            flags,
             client,
             index: HashMap::new(),
             channels: Vec::new(),
@@ -621,9 +629,12 @@ impl Worker {
         let state = &mut self.channels[i];
         let outcome = state.channel.on_sample(sample.time, sample.value);
         match outcome.status {
-            SampleStatus::Ok | SampleStatus::Missing => {
+            SampleStatus::Ok | SampleStatus::Missing | SampleStatus::Withheld => {
                 state.last_received = received;
                 self.stale.on_sample(i, received);
+                if outcome.status == SampleStatus::Withheld {
+                    Counters::bump(&self.shared.counters.withheld);
+                }
             }
             SampleStatus::Late => Counters::bump(&self.shared.counters.late),
             SampleStatus::Duplicate => Counters::bump(&self.shared.counters.duplicate),
@@ -656,19 +667,20 @@ impl Worker {
             });
             return None;
         }
-        let channel = match Channel::new(self.config.model_for(name)) {
-            Ok(c) => c,
-            Err(e) => {
-                // Config validation builds every model it names, so this means a bug; refuse, do not panic.
-                self.shared.channels.fetch_sub(1, Ordering::Relaxed);
-                self.shared.refuse(&Refusal {
-                    reason: "bad_model",
-                    key: name.to_string(),
-                    detail: format!("its configured model is unusable: {e}"),
-                });
-                return None;
-            }
-        };
+        let channel =
+            match Channel::with_flags(self.config.model_for(name), self.config.flags_for(name)) {
+                Ok(c) => c,
+                Err(e) => {
+                    // Config validation builds every model it names, so this means a bug; refuse, do not panic.
+                    self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+                    self.shared.refuse(&Refusal {
+                        reason: "bad_model",
+                        key: name.to_string(),
+                        detail: format!("its configured model is unusable: {e}"),
+                    });
+                    return None;
+                }
+            };
         let mut topic = String::new();
         if let Err(e) = self.output.render(name, &mut topic) {
             self.shared.channels.fetch_sub(1, Ordering::Relaxed);
@@ -679,11 +691,22 @@ impl Worker {
             });
             return None;
         }
+        let mut flags_topic = String::new();
+        if let Err(e) = self.flags.render(name, &mut flags_topic) {
+            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+            self.shared.refuse(&Refusal {
+                reason: "no_output_topic",
+                key: name.to_string(),
+                detail: format!("no flags topic for this channel: {e}"),
+            });
+            return None;
+        }
         let i = self.channels.len();
         self.channels.push(ChannelState {
             name: name.to_string(),
             channel,
             topic,
+            flags_topic,
             last_received: f64::NAN,
         });
         let stale_index = self.stale.add();
@@ -693,13 +716,13 @@ impl Worker {
     }
 
     fn report_stale(&mut self, i: usize, now: f64) {
-        let state = &self.channels[i];
+        let state = &mut self.channels[i];
         // The channel's clock may not be the wall clock (payload timestamps from a device): forecast as far past
         // its last sample as the wall clock has moved since that sample was received.
         let Some(last) = state.channel.last_time() else {
             return;
         };
-        let Some(outcome) = state.channel.stale(last + (now - state.last_received)) else {
+        let Some(outcome) = state.channel.mark_stale(last + (now - state.last_received)) else {
             return;
         };
         Counters::bump(&self.shared.counters.stale);
@@ -721,17 +744,49 @@ impl Worker {
             .try_publish(state.topic.clone(), s.output_qos, s.output_retain, payload)
         {
             Ok(()) => Counters::bump(&self.shared.counters.published),
-            Err(_) => {
-                Counters::bump(&self.shared.counters.publish_dropped);
-                if let Some(suppressed) =
-                    self.shared.limiter.check("publish_dropped", Instant::now())
-                {
-                    warn!(
-                        suppressed,
-                        "output dropped: the MQTT request queue is full (limits.request_queue) or closed"
-                    );
-                }
-            }
+            Err(_) => self.publish_dropped(),
+        }
+        if outcome.flags.changed() {
+            self.publish_flags(i, outcome);
+        }
+    }
+
+    /// The retained flag-change message, at QoS 1 whatever the output's QoS: flag changes are rare and must not
+    /// be lost on the way.
+    fn publish_flags(&self, i: usize, outcome: &Outcome) {
+        let state = &self.channels[i];
+        for kind in outcome.flags.raised.iter() {
+            Counters::bump(&self.shared.counters.flags_raised[kind as usize]);
+            info!(channel = %state.name, flag = %kind, time = outcome.time, "flag raised");
+        }
+        for kind in outcome.flags.cleared.iter() {
+            info!(channel = %state.name, flag = %kind, time = outcome.time, "flag cleared");
+        }
+        let mut payload = Vec::with_capacity(256);
+        publish::write_flags_payload(
+            &mut payload,
+            &state.name,
+            outcome.time,
+            &outcome.flags,
+            state.channel.detectors(),
+        );
+        match self
+            .client
+            .try_publish(state.flags_topic.clone(), QoS::AtLeastOnce, true, payload)
+        {
+            // Not counted as `published`, which stays one per input sample.
+            Ok(()) => {}
+            Err(_) => self.publish_dropped(),
+        }
+    }
+
+    fn publish_dropped(&self) {
+        Counters::bump(&self.shared.counters.publish_dropped);
+        if let Some(suppressed) = self.shared.limiter.check("publish_dropped", Instant::now()) {
+            warn!(
+                suppressed,
+                "output dropped: the MQTT request queue is full (limits.request_queue) or closed"
+            );
         }
     }
 }

@@ -297,7 +297,8 @@ fn replay_plant_config_on_example() {
             "std",
             "innovation",
             "std_innovation",
-            "status"
+            "status",
+            "flags"
         ]
     );
     let rows: Vec<csv::StringRecord> = rdr.records().map(|r| r.unwrap()).collect();

@@ -209,7 +209,8 @@ fn daemon_filters_like_replay_and_stops_cleanly_on_sigterm() {
     }
     let mut statuses: HashMap<String, usize> = HashMap::new();
     for name in CHANNELS {
-        let mut reference = Channel::new(models.model_for(name)).unwrap();
+        let mut reference =
+            Channel::with_flags(models.model_for(name), models.flags_for(name)).unwrap();
         let sent: Vec<&Input> = samples.iter().filter(|s| s.0 == name).collect();
         let outs = &by_channel[name];
         assert_eq!(outs.len(), sent.len(), "{name}");
@@ -359,7 +360,8 @@ fn a_quiet_channel_reports_stale_forecasts_until_data_returns() {
         }
     };
     let models = Config::from_str(MODELS, "models").unwrap().channels;
-    let mut reference = Channel::new(models.model_for("TT-101")).unwrap();
+    let mut reference =
+        Channel::with_flags(models.model_for("TT-101"), models.flags_for("TT-101")).unwrap();
     reference.on_sample(t, Some(72.0));
     let want = reference.on_sample(t + 1.0, Some(72.2));
     assert_eq!(back.status, "ok");
@@ -625,7 +627,8 @@ fn broker_loss_reconnects_keeps_state_and_loses_no_qos1_sample() {
 
     // State survived: the outputs continue the same filter, sample for sample.
     let models = Config::from_str(MODELS, "models").unwrap().channels;
-    let mut reference = Channel::new(models.model_for("TT-101")).unwrap();
+    let mut reference =
+        Channel::with_flags(models.model_for("TT-101"), models.flags_for("TT-101")).unwrap();
     for (k, out) in &ok {
         let want = reference.on_sample(t0 + 10.0 * *k as f64, Some(values[*k]));
         close(

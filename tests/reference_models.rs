@@ -104,7 +104,7 @@ fn check_fixed(label: &str, spec: &ModelSpec, y: &[f64], fixed: &Value, tol: f64
             }
             StepKind::Missing => assert!(y[i].is_nan() && innov[i].is_nan(), "{}", at("missing")),
             StepKind::Diffuse => assert!(i < n_diffuse, "{}", at("diffuse")),
-            StepKind::Degenerate => panic!("{}", at("degenerate step")),
+            StepKind::Degenerate | StepKind::Withheld => panic!("{}", at("unexpected step kind")),
         }
     })
     .unwrap();

@@ -161,6 +161,8 @@ pub struct OutputConfig {
     pub topic: String,
     pub qos: u8,
     pub retain: bool,
+    /// `output.flags_topic` if given; [`DaemonConfig::flags_topic`] has the default filled in.
+    pub flags_topic: Option<String>,
 }
 
 /// Staleness: a channel silent for `stale_after_s` publishes predictions every `stale_every_s`.
@@ -245,6 +247,7 @@ pub(super) struct RawInput {
 #[serde(deny_unknown_fields, expecting = "an [output] table")]
 pub(super) struct RawOutput {
     topic: Option<String>,
+    flags_topic: Option<String>,
     qos: Option<i64>,
     retain: Option<bool>,
 }
@@ -278,7 +281,11 @@ pub(super) struct Ctx<'a> {
 }
 
 impl Ctx<'_> {
-    fn invalid(&self, key: impl Into<String>, message: impl Into<String>) -> ConfigError {
+    pub(super) fn invalid(
+        &self,
+        key: impl Into<String>,
+        message: impl Into<String>,
+    ) -> ConfigError {
         ConfigError::Invalid {
             file: self.file.to_string(),
             key: key.into(),
@@ -286,7 +293,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn missing(&self, key: impl Into<String>, hint: impl Into<String>) -> ConfigError {
+    pub(super) fn missing(&self, key: impl Into<String>, hint: impl Into<String>) -> ConfigError {
         ConfigError::Missing {
             file: self.file.to_string(),
             key: key.into(),
@@ -660,9 +667,28 @@ pub(super) fn output(raw: &RawOutput, ctx: &Ctx) -> Result<OutputConfig, ConfigE
             "where estimates go, with {channel} for the channel name, e.g. topic = \"brackenfield/clean/{channel}\"",
         )
     })?;
+    check_channel_template(&topic, "output.topic", ctx)?;
+    if let Some(flags) = &raw.flags_topic {
+        check_channel_template(flags, "output.flags_topic", ctx)?;
+        if *flags == topic {
+            return Err(ctx.invalid(
+                "output.flags_topic",
+                "must differ from output.topic: subscribers tell estimates from flag changes by topic",
+            ));
+        }
+    }
+    Ok(OutputConfig {
+        topic,
+        qos: ctx.qos("output.qos", raw.qos, 0)?,
+        retain: raw.retain.unwrap_or(false),
+        flags_topic: raw.flags_topic.clone(),
+    })
+}
+
+fn check_channel_template(topic: &str, key: &str, ctx: &Ctx) -> Result<(), ConfigError> {
     if !topic.contains("{channel}") {
         return Err(ctx.invalid(
-            "output.topic",
+            key,
             format!(
                 "{topic:?} has no {{channel}}: every channel would publish to the same topic; \
                  e.g. \"brackenfield/clean/{{channel}}\""
@@ -672,16 +698,11 @@ pub(super) fn output(raw: &RawOutput, ctx: &Ctx) -> Result<OutputConfig, ConfigE
     let rest = topic.replace("{channel}", "");
     if rest.contains(['{', '}']) {
         return Err(ctx.invalid(
-            "output.topic",
+            key,
             format!("{topic:?} has a placeholder other than {{channel}}, the only one it takes"),
         ));
     }
-    check_topic_name(&rest).map_err(|m| ctx.invalid("output.topic", m))?;
-    Ok(OutputConfig {
-        topic,
-        qos: ctx.qos("output.qos", raw.qos, 0)?,
-        retain: raw.retain.unwrap_or(false),
-    })
+    check_topic_name(&rest).map_err(|m| ctx.invalid(key, m))
 }
 
 pub(super) fn status(raw: &RawStatus, ctx: &Ctx) -> Result<Option<String>, ConfigError> {
@@ -727,6 +748,11 @@ pub(super) fn limits(raw: &RawLimits, ctx: &Ctx) -> Result<LimitsConfig, ConfigE
 /// The default status topic of a daemon with this client id.
 pub fn default_status_topic(client_id: &str) -> String {
     format!("gaugewise/{client_id}/status")
+}
+
+/// Where flag changes go when `output.flags_topic` is not set.
+pub fn default_flags_topic(client_id: &str) -> String {
+    format!("gaugewise/{client_id}/flags/{{channel}}")
 }
 
 // ---------------------------------------------------------------------------------------------------------------
@@ -973,6 +999,8 @@ pub struct DaemonConfig {
     pub output: OutputConfig,
     /// Retained `online`/`offline` messages and the Last Will go here.
     pub status_topic: String,
+    /// Retained flag-change messages, a template with `{channel}`.
+    pub flags_topic: String,
     pub stale_after_s: Option<f64>,
     pub stale_every_s: f64,
     pub max_channels: usize,
@@ -1050,6 +1078,10 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         .status_topic
         .clone()
         .unwrap_or_else(|| default_status_topic(&broker.client_id));
+    let flags_topic = output
+        .flags_topic
+        .clone()
+        .unwrap_or_else(|| default_flags_topic(&broker.client_id));
     let slash_names = config.inputs.iter().any(|i| i.channel.may_contain_slash());
     for (i, input) in config.inputs.iter().enumerate() {
         if filter_may_receive(&input.topic, &output.topic, slash_names) {
@@ -1078,6 +1110,23 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
             ));
         }
     }
+    for (i, input) in config.inputs.iter().enumerate() {
+        if filter_may_receive(&input.topic, &flags_topic, slash_names) {
+            let key = if output.flags_topic.is_some() {
+                "output.flags_topic".to_string()
+            } else {
+                format!("inputs[{i}].topic")
+            };
+            return Err(ctx.invalid(
+                key,
+                format!(
+                    "the flags topic {flags_topic:?} can be matched by inputs[{i}].topic {:?}: the daemon would \
+                     read its own flag messages back as samples",
+                    input.topic
+                ),
+            ));
+        }
+    }
     Ok(DaemonConfig {
         source: ctx.file.to_string(),
         channels: config.channels.clone(),
@@ -1085,6 +1134,7 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         inputs: config.inputs.clone(),
         output,
         status_topic,
+        flags_topic,
         stale_after_s: config.timing.stale_after_s,
         stale_every_s: config.timing.stale_every_s,
         max_channels: config.limits.max_channels,
@@ -1203,6 +1253,11 @@ impl DaemonConfig {
             "status: {} (retained online/offline, offline as Last Will)",
             self.status_topic
         );
+        let _ = writeln!(
+            s,
+            "flags: {} (retained, QoS 1, on every flag change)",
+            self.flags_topic
+        );
         match self.stale_after_s {
             Some(after) => {
                 let _ = writeln!(
@@ -1232,6 +1287,15 @@ impl DaemonConfig {
                 o.pattern,
                 super::model_line(&o.model)
             );
+        }
+        let flags = &self.channels.flags;
+        let _ = writeln!(
+            s,
+            "flags (the first matching override wins, else the default):"
+        );
+        let _ = writeln!(s, "  default: {}", flags.default.summary());
+        for (i, (pattern, design)) in flags.overrides.iter().enumerate() {
+            let _ = writeln!(s, "  override[{i}] {pattern}: {}", design.summary());
         }
         s
     }
@@ -1308,10 +1372,12 @@ mod tests {
             OutputConfig {
                 topic: "plant/clean/{channel}".into(),
                 qos: 0,
-                retain: false
+                retain: false,
+                flags_topic: None,
             }
         );
         assert_eq!(d.status_topic, "gaugewise/gw-01/status");
+        assert_eq!(d.flags_topic, "gaugewise/gw-01/flags/{channel}");
         assert_eq!(
             (d.stale_after_s, d.stale_every_s, d.max_channels),
             (Some(60.0), 10.0, 100_000)
@@ -1905,6 +1971,24 @@ mod tests {
         );
         assert!(
             m.starts_with("gw.toml: inputs[1].topic: the status topic \"gaugewise/gw-01/status\""),
+            "{m}"
+        );
+        // The flags topic: set, defaulted, and checked like the output topic.
+        let d = load(&with("[output]", "flags_topic = \"plant/flags/{channel}\"")).unwrap();
+        assert_eq!(d.flags_topic, "plant/flags/{channel}");
+        let m = message(&with("[output]", "flags_topic = \"plant/flags\""));
+        assert!(
+            m.starts_with("gw.toml: output.flags_topic: \"plant/flags\" has no {channel}"),
+            "{m}"
+        );
+        let m = message(&with("[output]", "flags_topic = \"plant/clean/{channel}\""));
+        assert!(
+            m.starts_with("gw.toml: output.flags_topic: must differ from output.topic"),
+            "{m}"
+        );
+        let m = message(&with("[output]", "flags_topic = \"plant/raw/{channel}\""));
+        assert!(
+            m.starts_with("gw.toml: output.flags_topic: the flags topic"),
             "{m}"
         );
     }

@@ -48,6 +48,10 @@ pub struct Counters {
     pub publish_dropped: AtomicU64,
     /// Successful connects after the first one.
     pub reconnects: AtomicU64,
+    /// Samples whose value did not update the estimate (spike, out of range, stuck).
+    pub withheld: AtomicU64,
+    /// Flags raised, by kind in `detect::FlagKind::ALL` order.
+    pub flags_raised: [AtomicU64; 6],
     rejected_total: AtomicU64,
     rejected: Mutex<HashMap<(&'static str, String), u64>>,
 }
@@ -63,6 +67,9 @@ pub struct CounterSnapshot {
     pub stale: u64,
     pub publish_dropped: u64,
     pub reconnects: u64,
+    pub withheld: u64,
+    /// Flags raised, by kind in `detect::FlagKind::ALL` order.
+    pub flags_raised: [u64; 6],
     /// Rejections per reason and channel (or topic, when no channel could be named), sorted.
     pub rejected_by: BTreeMap<(String, String), u64>,
 }
@@ -102,6 +109,8 @@ impl Counters {
             stale: get(&self.stale),
             publish_dropped: get(&self.publish_dropped),
             reconnects: get(&self.reconnects),
+            withheld: get(&self.withheld),
+            flags_raised: std::array::from_fn(|i| get(&self.flags_raised[i])),
             rejected_by: map
                 .iter()
                 .map(|((r, k), n)| ((r.to_string(), k.clone()), *n))
@@ -139,8 +148,14 @@ impl fmt::Display for CounterSnapshot {
         }
         write!(
             f,
-            " late={} duplicate={} stale={} publish_dropped={} reconnects={}",
-            self.late, self.duplicate, self.stale, self.publish_dropped, self.reconnects
+            " late={} duplicate={} stale={} publish_dropped={} reconnects={} withheld={} flags_raised={}",
+            self.late,
+            self.duplicate,
+            self.stale,
+            self.publish_dropped,
+            self.reconnects,
+            self.withheld,
+            self.flags_raised.iter().sum::<u64>()
         )
     }
 }
@@ -199,7 +214,7 @@ mod tests {
         assert_eq!(
             s.to_string(),
             "received=2 published=1 rejected=3 (no_channel=1 not_json=2) late=0 duplicate=0 stale=0 \
-             publish_dropped=0 reconnects=0"
+             publish_dropped=0 reconnects=0 withheld=0 flags_raised=0"
         );
     }
 

@@ -35,6 +35,8 @@ pub fn from_config(
         .collect::<Result<Vec<_>, _>>()?;
     let output = OutputTopic::parse(&config.output.topic)
         .map_err(|e| RuntimeError::Settings(format!("output.topic: {e}")))?;
+    let flags = OutputTopic::parse(&config.flags_topic)
+        .map_err(|e| RuntimeError::Settings(format!("output.flags_topic: {e}")))?;
     let subscriptions = config
         .inputs
         .iter()
@@ -92,6 +94,7 @@ pub fn from_config(
         Pipeline {
             router: Router::new(rules),
             output,
+            flags,
         },
     ))
 }
