@@ -16,12 +16,17 @@
 //! The `filter` group goes through the run-time `Filter` enum (what `channel` and `estimate` use); the `kalman`
 //! group calls the generic `Kalman<M, N>` directly, to show what the enum dispatch costs.
 //!
+//! The `channel` group times the whole per-sample path of a channel (ordering checks, fault detectors, the gated
+//! step) with the flags on and off.
+//!
 //! Run: `cargo bench --bench filter_step`. That zero allocations happen per step is checked by `tests/no_alloc.rs`.
 
 mod common;
 
 use common::{lag_signal, Rng, INTERVAL, MEAN, OBS_VAR, PHI, STATE_VAR};
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
+use gaugewise::channel::Channel;
+use gaugewise::detect::FlagDesign;
 use gaugewise::filter::{Filter, Kalman, Step};
 use gaugewise::model::{Arma, Lag, Level, ModelParams, ModelSpec, StateSpace, Trend};
 use std::hint::black_box;
@@ -200,11 +205,42 @@ fn kalman_step(c: &mut Criterion) {
     group.finish();
 }
 
+/// The channel's whole per-sample path (ordering checks, detectors, gated filter step), against `filter` above:
+/// what the fault flags cost per sample.
+fn channel_step(c: &mut Criterion) {
+    let (_, clean) = lag_signal(LEN, 0.0, 1);
+    let mut group = c.benchmark_group("channel");
+    group.throughput(Throughput::Elements(1));
+    for (name, model) in models() {
+        for (variant, design) in [
+            ("flags_on", FlagDesign::default()),
+            ("flags_off", FlagDesign::disabled()),
+        ] {
+            group.bench_function(BenchmarkId::new(variant, name), |b| {
+                let mut ch = Channel::with_flags(&model, &design).expect("valid model");
+                let mut t = 0.0;
+                for y in &clean {
+                    t += INTERVAL;
+                    black_box(ch.on_sample(t, Some(*y)));
+                }
+                let mut i = 0usize;
+                b.iter(|| {
+                    let k = i & MASK;
+                    i = i.wrapping_add(1);
+                    t += INTERVAL;
+                    black_box(ch.on_sample(black_box(t), black_box(Some(clean[k]))))
+                });
+            });
+        }
+    }
+    group.finish();
+}
+
 criterion_group! {
     name = benches;
     config = Criterion::default()
         .warm_up_time(Duration::from_millis(500))
         .measurement_time(Duration::from_secs(2));
-    targets = filter_step, kalman_step
+    targets = filter_step, kalman_step, channel_step
 }
 criterion_main!(benches);

@@ -153,6 +153,36 @@ fn filter_step_never_allocates() {
     }
 }
 
+/// The whole per-sample path of a channel: detectors before and after the filter, flags, robust update (spikes
+/// and a stuck stretch are in the data so the withholding and re-acquiring branches run too).
+#[test]
+fn channel_sample_never_allocates() {
+    let data = samples(10_000);
+    for spec in specs() {
+        let mut c = gaugewise::channel::Channel::new(&spec).unwrap();
+        let (n, raised) = allocations_in(|| {
+            let (mut t, mut raised) = (0.0, 0);
+            for (k, &(dt, y)) in data.iter().enumerate() {
+                t += dt;
+                let y = match k % 2_000 {
+                    500 => y.map(|v| v + 1e3),
+                    1_000..=1_004 => y.map(|v| v - 1e3),
+                    1_500..=1_600 => Some(3.0),
+                    _ => y,
+                };
+                let o = c.on_sample(t, y);
+                raised += o.flags.raised.len();
+                if k % 1_000 == 999 {
+                    let _ = c.mark_stale(t + 1e4);
+                }
+            }
+            raised
+        });
+        assert!(raised > 0, "{:?}: the faults raised no flag", spec.kind());
+        assert_eq!(n, 0, "{:?}: {n} allocations in 10,000 samples", spec.kind());
+    }
+}
+
 #[test]
 fn loglik_allocations_do_not_grow_with_the_series() {
     let short = samples(1_000);
