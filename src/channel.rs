@@ -113,6 +113,17 @@ impl Channel {
         &self.detectors
     }
 
+    /// Runs `spec` from the next sample on (re-estimated parameters). The filter's state carries over when the
+    /// model family and state size are unchanged; otherwise the new model starts from its prior. The flags keep
+    /// their state (their thresholds depend only on the nominal interval, which a re-estimation keeps).
+    pub fn set_model(&mut self, spec: &ModelSpec) -> Result<(), ChannelError> {
+        let mut filter = Filter::new(spec)?;
+        filter.adopt(&self.filter);
+        self.filter = filter;
+        self.spec = spec.clone();
+        Ok(())
+    }
+
     pub fn spec(&self) -> &ModelSpec {
         &self.spec
     }

@@ -24,14 +24,17 @@
 mod daemon;
 mod env;
 mod flags;
+mod learn;
 
 pub use daemon::{
     check_filter, check_pointer, default_status_topic, BrokerConfig, ChannelTemplate, DaemonConfig,
     InputConfig, JsonPayload, LimitsConfig, OutputConfig, PayloadFormat, Secret, TemplatePart,
     TimeFormat, TimingConfig, TlsConfig, MAX_PACKET_LIMIT,
 };
+pub use daemon::{MetricsConfig, DEFAULT_METRICS_LISTEN};
 pub use env::{EnvOverride, ENV_NOT_CONFIG, ENV_PREFIX, ENV_SEPARATOR};
 pub use flags::FlagRules;
+pub use learn::LearnRules;
 
 use crate::model::{ModelError, ModelKind, ModelParams, ModelSpec};
 use globset::{Glob, GlobMatcher};
@@ -125,6 +128,8 @@ pub struct Config {
     pub status_topic: Option<String>,
     pub timing: TimingConfig,
     pub limits: LimitsConfig,
+    /// `[metrics]`; None when the table is absent (the endpoint is off).
+    pub metrics: Option<MetricsConfig>,
     /// The name errors use for the file (the path as given).
     pub source: String,
     /// The environment variables that were applied, in the order they were applied.
@@ -145,6 +150,8 @@ pub struct ChannelConfig {
     matchers: Vec<GlobMatcher>,
     /// Each channel's fault-flag design (`[flags]`).
     pub flags: FlagRules,
+    /// Which channels re-estimate their parameters, and how (`[reestimate]`).
+    pub learn: LearnRules,
 }
 
 /// A model for the channels whose name matches `pattern` (a globset glob).
@@ -160,6 +167,7 @@ impl PartialEq for ChannelConfig {
         self.default == other.default
             && self.overrides == other.overrides
             && self.flags == other.flags
+            && self.learn == other.learn
     }
 }
 
@@ -175,7 +183,13 @@ impl ChannelConfig {
             overrides,
             matchers,
             flags: FlagRules::default(),
+            learn: LearnRules::default(),
         })
+    }
+
+    /// The re-estimation settings for `channel`; None when it does not re-estimate.
+    pub fn learn_for(&self, channel: &str) -> Option<&crate::reestimate::LearnSettings> {
+        self.learn.settings_for(channel)
     }
 
     /// The fault-flag design for `channel`.
@@ -337,6 +351,7 @@ impl Config {
             .chain(overrides.iter().map(|o: &Override| o.model.interval))
             .collect();
         let flags = flags::rules(raw.flags.as_ref(), &intervals, ctx)?;
+        let learn = learn::rules(raw.reestimate.as_ref(), ctx)?;
         let inputs = raw
             .inputs
             .iter()
@@ -349,6 +364,7 @@ impl Config {
                 overrides,
                 matchers,
                 flags,
+                learn,
             },
             broker: raw
                 .broker
@@ -367,6 +383,11 @@ impl Config {
             },
             timing: daemon::timing(&raw.timing.unwrap_or_default(), ctx)?,
             limits: daemon::limits(&raw.limits.unwrap_or_default(), ctx)?,
+            metrics: raw
+                .metrics
+                .as_ref()
+                .map(|m| daemon::metrics(m, ctx))
+                .transpose()?,
             source: source.to_string(),
             env: Vec::new(),
             base: None,
@@ -636,7 +657,9 @@ struct RawConfig {
     status: Option<daemon::RawStatus>,
     timing: Option<daemon::RawTiming>,
     limits: Option<daemon::RawLimits>,
+    metrics: Option<daemon::RawMetrics>,
     flags: Option<flags::RawFlags>,
+    reestimate: Option<learn::RawLearn>,
 }
 
 #[derive(Debug, Default, Deserialize)]

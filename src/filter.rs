@@ -424,6 +424,19 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
         }
     }
 
+    /// Takes over the state of `other` (a filter of the same model family with other parameters), so a
+    /// parameter change does not restart the channel: the mean and covariances carry on, and the new parameters
+    /// act from the next step. The steady-state shortcut is left, since the gain belongs to the old parameters.
+    pub fn adopt(&mut self, other: &Self) {
+        self.a = other.a;
+        self.p = other.p;
+        self.p_inf = other.p_inf;
+        self.diffuse = other.diffuse;
+        self.started = other.started;
+        self.steady = None;
+        self.p_pred_prev = SMatrix::repeat(f64::NAN);
+    }
+
     /// Filtered state mean and covariance (proper part), for tests and checkpoints.
     pub fn state(&self) -> (SVector<f64, N>, SMatrix<f64, N, N>) {
         (self.a, self.p)
@@ -460,6 +473,22 @@ macro_rules! each_filter {
 }
 
 impl Filter {
+    /// [`Kalman::adopt`] when both filters are of one variant (same model family and state size); false, and
+    /// nothing changed, otherwise.
+    pub fn adopt(&mut self, other: &Filter) -> bool {
+        match (self, other) {
+            (Filter::Level(a), Filter::Level(b)) => a.adopt(b),
+            (Filter::Lag(a), Filter::Lag(b)) => a.adopt(b),
+            (Filter::Trend(a), Filter::Trend(b)) => a.adopt(b),
+            (Filter::Arma1(a), Filter::Arma1(b)) => a.adopt(b),
+            (Filter::Arma2(a), Filter::Arma2(b)) => a.adopt(b),
+            (Filter::Arma3(a), Filter::Arma3(b)) => a.adopt(b),
+            (Filter::Arma4(a), Filter::Arma4(b)) => a.adopt(b),
+            _ => return false,
+        }
+        true
+    }
+
     /// Realises a validated model in state-space form.
     pub fn new(spec: &ModelSpec) -> Result<Self, ModelError> {
         spec.validate()?;

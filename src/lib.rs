@@ -19,6 +19,7 @@ pub mod ingest;
 pub mod model;
 pub mod notify;
 pub mod publish;
+pub mod reestimate;
 pub mod replay;
 pub mod report;
 pub mod runtime;

@@ -41,7 +41,12 @@ enum Command {
         MQTT broker on a free loopback port, a simulated plant (the fictional Brackenfield Works: a vessel \
         temperature, a feed flow and a tank level, with dropouts and a transmitter that falls silent for ten \
         seconds every minute), and the daemon against that broker, then shows a live table per channel: raw \
-        value, estimate ± std and status. Runs until Ctrl-C, or for --seconds."
+        value, estimate ± std and status. Runs until Ctrl-C, or for --seconds.\n\n\
+        The plant also has faults (spike bursts on TT-101, FT-201 stuck for a while), so flags show within the \
+        first minute; each row has the channel's flags and a sparkline of its estimate, and a footer gives the \
+        rates. When stdout is not a terminal, the views are printed one after the other and flag changes as \
+        lines. At the end the session is written as an HTML report (--report, default a new file in the \
+        temporary directory) and its path printed."
     )]
     Demo(DemoArgs),
     /// Fit candidate models to one tag's history and rank them.
@@ -60,7 +65,9 @@ enum Command {
         channel, given the model its name matches in the config, and samples are fed in time order.\n\n\
         Output CSV columns: time,channel,raw,estimate,std,innovation,std_innovation,status,flags. `time` is in seconds \
         (epoch seconds whatever the input's form, or the sample index without a time column). Empty cells mean no \
-        value; std is `inf` while a diffuse model is still initialising. A summary goes to stderr."
+        value; std is `inf` while a diffuse model is still initialising. A summary goes to stderr.\n\n\
+        With --report FILE.html it also writes a self-contained HTML report: per channel the raw values, the \
+        estimate with its 95% band and the flags shaded by kind, and a table of the flags."
     )]
     Replay(ReplayArgs),
     /// Run the daemon: subscribe to the configured MQTT inputs and publish one filtered output per sample.
@@ -69,7 +76,11 @@ enum Command {
         every sample through its channel's model (the same code path as replay) and publish one JSON output per \
         sample, plus stale forecasts for channels that have gone quiet.\n\n\
         Runs until SIGTERM or SIGINT (Ctrl-C), then stops taking messages, flushes what is in flight, publishes the \
-        retained offline status and exits 0. Configuration errors exit 2 before connecting. Logs go to stderr; set \
+        retained offline status and exits 0. Configuration errors exit 2 before connecting. SIGHUP reloads the \
+        configuration: channel models and flag designs are applied at once (changed channels restart, the others \
+        keep their state), an invalid file is refused and the daemon carries on. Under systemd (Type=notify) it \
+        reports readiness, reloads and shutdown, and pings the watchdog. With a [metrics] table it serves \
+        Prometheus metrics on /metrics and a health check on /health. Logs go to stderr; set \
         GAUGEWISE_LOG or RUST_LOG (e.g. debug, or gaugewise=debug) to change the level, default info."
     )]
     Run(RunArgs),
@@ -127,6 +138,9 @@ struct ReplayArgs {
     /// Output CSV; default: stdout.
     #[arg(long, value_name = "FILE.csv")]
     output: Option<PathBuf>,
+    /// Also write a self-contained HTML report (per channel raw, estimate and band, flags; a flag summary).
+    #[arg(long, value_name = "FILE.html")]
+    report: Option<PathBuf>,
 }
 
 #[derive(Debug, clap::Args)]
@@ -334,19 +348,37 @@ fn replay(args: &ReplayArgs) -> Result<(), Failure> {
             args.input.display()
         )))
     })?;
+    let mut traces = args.report.as_ref().map(|_| replay::Traces::new(&run));
+    let observe = |row: &replay::Row| {
+        if let Some(t) = traces.as_mut() {
+            t.push(row);
+        }
+    };
     let summary = match &args.output {
         Some(path) => {
             let file = std::fs::File::create(path)
                 .with_context(|| format!("cannot create {}", path.display()))
                 .map_err(other)?;
-            write_rows(run, io::BufWriter::new(file), path)?
+            write_rows(run, io::BufWriter::new(file), path, observe)?
         }
         None => write_rows(
             run,
             io::BufWriter::new(io::stdout().lock()),
             Path::new("stdout"),
+            observe,
         )?,
     };
+    if let (Some(path), Some(traces)) = (&args.report, traces) {
+        let title = format!(
+            "gaugewise replay of {} with {}",
+            args.input.display(),
+            args.config.display()
+        );
+        let html = gaugewise::html_report::replay_report(&traces.finish(), &title);
+        std::fs::write(path, html)
+            .with_context(|| format!("cannot write the report {}", path.display()))
+            .map_err(other)?;
+    }
     let index_note = if base == TimeBase::Index {
         " (no time column: times are the row index)"
     } else {
@@ -356,8 +388,13 @@ fn replay(args: &ReplayArgs) -> Result<(), Failure> {
     Ok(())
 }
 
-fn write_rows<W: Write>(run: Replay, out: W, path: &Path) -> Result<replay::Summary, Failure> {
-    replay::write_csv(run, out)
+fn write_rows<W: Write>(
+    run: Replay,
+    out: W,
+    path: &Path,
+    observe: impl FnMut(&replay::Row),
+) -> Result<replay::Summary, Failure> {
+    replay::write_csv_observed(run, out, observe)
         .with_context(|| format!("cannot write {}", path.display()))
         .map_err(other)
 }
@@ -393,20 +430,33 @@ fn run(args: &RunArgs) -> Result<(), Failure> {
         .context("cannot start the async runtime")
         .map_err(other)?;
     let result = rt.block_on(async {
-        // Installed before anything connects, so an early SIGTERM is a clean stop too.
+        // Installed before anything connects, so an early SIGTERM is a clean stop too, and an early SIGHUP a
+        // reload rather than the end of the process.
         let stop = runtime::termination_signal();
-        runtime::run(
-            settings,
-            std::sync::Arc::new(daemon.channels.clone()),
-            pipeline,
-            stop,
-        )
-        .await
+        let hangups = runtime::reload::hangup_requests();
+        let path = args.config.clone();
+        let load: runtime::reload::Loader =
+            std::sync::Arc::new(move || Config::load(&path).and_then(|c| c.daemon()));
+        let channels = std::sync::Arc::new(daemon.channels.clone());
+        let service = runtime::Service {
+            metrics: daemon.metrics.map(|m| m.listen),
+            reload: Some(runtime::reload::Reload {
+                current: daemon,
+                load,
+                requests: hangups,
+            }),
+            ..runtime::Service::from_env()
+        };
+        runtime::run_service(settings, channels, pipeline, service, stop).await
     });
     // Tasks still running (a worker that missed the drain deadline) must not hold the exit.
     rt.shutdown_timeout(std::time::Duration::from_millis(500));
-    result.map_err(input)?;
-    Ok(())
+    match result {
+        // A taken metrics port may be free after a restart (an old instance still stopping): not exit code 2.
+        Err(e @ runtime::RuntimeError::MetricsListen { .. }) => Err(other(e)),
+        Err(e) => Err(input(e)),
+        Ok(_) => Ok(()),
+    }
 }
 
 #[derive(Debug, clap::Args)]
@@ -414,6 +464,9 @@ struct DemoArgs {
     /// Stop after this many seconds (default: run until Ctrl-C).
     #[arg(long, value_name = "N")]
     seconds: Option<f64>,
+    /// Where to write the session's HTML report at the end (default: a new file in the temporary directory).
+    #[arg(long, value_name = "FILE.html")]
+    report: Option<PathBuf>,
 }
 
 fn demo(args: &DemoArgs) -> Result<(), Failure> {
@@ -422,6 +475,22 @@ fn demo(args: &DemoArgs) -> Result<(), Failure> {
         if !(s.is_finite() && s > 0.0) {
             return Err(input(anyhow!("--seconds must be a number > 0 (got {s})")));
         }
+    }
+    let report_path = args
+        .report
+        .clone()
+        .unwrap_or_else(gaugewise::demo::default_report_path);
+    // Found out now rather than after a long session: the report's directory must exist.
+    let dir = match report_path.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d,
+        _ => Path::new("."),
+    };
+    if !dir.is_dir() {
+        return Err(other(anyhow!(
+            "cannot write the report {}: {} is not a directory",
+            report_path.display(),
+            dir.display()
+        )));
     }
     // The table is the demo's output; log lines would tear it, so only warnings and errors go to stderr.
     if std::env::var_os("GAUGEWISE_LOG").is_none() && std::env::var_os("RUST_LOG").is_none() {
@@ -469,6 +538,13 @@ fn demo(args: &DemoArgs) -> Result<(), Failure> {
             None => "; the daemon did not stop within 5 s".to_string(),
         }
     );
+    std::fs::write(&report_path, report.report_html())
+        .with_context(|| format!("cannot write the report {}", report_path.display()))
+        .map_err(other)?;
+    let mut out = io::stdout().lock();
+    writeln!(out, "demo report: {}", report_path.display())
+        .and_then(|()| out.flush())
+        .map_err(other)?;
     Ok(())
 }
 

@@ -11,14 +11,22 @@
 //! rejected), `innovation` when there was no observation update, `std_innovation` also while a diffuse state is
 //! being initialised. `std` is `inf` until a diffuse model has seen enough values to pin its level down. `flags` is
 //! the set of fault flags active after the sample, `|`-separated (`spike|bias`), empty when none.
+//!
+//! [`Traces`] collects what `replay --report` draws: per channel the samples that reached the filter and the flag
+//! spans, opened and closed by the rows' raised/cleared transitions. [`TraceBuilder`] is its per-channel part,
+//! shared with the demo, which sees only the active flags of each output message ([`TraceBuilder::follow`]).
 
 use crate::channel::{Channel, ChannelError, Outcome, SampleStatus};
 use crate::config::ChannelConfig;
+use crate::detect::{FlagKind, FlagSet, FlagSettings, Severity};
 use crate::history::Series;
+use crate::html_report::{ChannelTrace, FlagSpan};
+use crate::reestimate::{Decision, Learner};
 use std::cmp::{Ordering, Reverse};
-use std::collections::BinaryHeap;
+use std::collections::{BinaryHeap, HashMap};
 use std::fmt;
 use std::io::Write;
+use std::sync::Arc;
 use thiserror::Error;
 
 /// Why a replay could not start.
@@ -35,10 +43,13 @@ pub enum ReplayError {
 }
 
 /// One replayed sample.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Row<'a> {
     pub channel: &'a str,
     pub outcome: Outcome,
+    /// The re-estimation this sample triggered, if any (accepted or refused); an accepted one runs from the next
+    /// sample on.
+    pub reestimated: Option<Arc<Decision>>,
 }
 
 /// Counts of what a replay did, by sample status.
@@ -55,6 +66,9 @@ pub struct Summary {
     pub withheld: usize,
     /// Flags raised, all kinds together.
     pub flags_raised: usize,
+    /// Re-estimations whose parameters were taken, and those refused by a guard rail.
+    pub reestimated: usize,
+    pub reestimate_refused: usize,
 }
 
 impl Summary {
@@ -100,6 +114,13 @@ impl fmt::Display for Summary {
         }
         if self.flags_raised > 0 {
             write!(f, ", {} flag(s) raised", self.flags_raised)?;
+        }
+        if self.reestimated + self.reestimate_refused > 0 {
+            write!(
+                f,
+                ", {} re-estimation(s) taken, {} refused",
+                self.reestimated, self.reestimate_refused
+            )?;
         }
         Ok(())
     }
@@ -180,6 +201,8 @@ impl Iterator for MergeByTime<'_> {
 pub struct Replay<'a> {
     series: &'a [Series],
     channels: Vec<Channel>,
+    /// Per series, its re-estimation schedule when `[reestimate]` turns it on.
+    learners: Vec<Option<Learner>>,
     order: MergeByTime<'a>,
     summary: Summary,
 }
@@ -188,6 +211,7 @@ impl<'a> Replay<'a> {
     /// Builds each series' channel from the model `config` gives its name.
     pub fn new(config: &ChannelConfig, series: &'a [Series]) -> Result<Self, ReplayError> {
         let mut channels = Vec::with_capacity(series.len());
+        let mut learners = Vec::with_capacity(series.len());
         for (i, s) in series.iter().enumerate() {
             // Two series with one name would be one channel live; replaying them apart would mislead.
             if series[..i].iter().any(|o| o.name == s.name) {
@@ -199,10 +223,12 @@ impl<'a> Replay<'a> {
                     source: e,
                 })?;
             channels.push(channel);
+            learners.push(config.learn_for(&s.name).copied().map(Learner::new));
         }
         Ok(Self {
             series,
             channels,
+            learners,
             order: MergeByTime::new(series),
             summary: Summary {
                 channels: series.len(),
@@ -231,9 +257,23 @@ impl<'a> Iterator for Replay<'a> {
         let outcome = self.channels[i].on_sample(s.times[k], Some(s.values[k]));
         self.summary.count(outcome.status);
         self.summary.flags_raised += outcome.flags.raised.len();
+        // The daemon's schedule, run inline: the fit happens at the sample that makes it due, and an accepted
+        // change applies from the next sample (live, it applies when the background fit returns).
+        let reestimated = self.learners[i]
+            .as_mut()
+            .and_then(|l| l.run_inline(&mut self.channels[i], &outcome))
+            .map(|d| {
+                if d.accepted() {
+                    self.summary.reestimated += 1;
+                } else {
+                    self.summary.reestimate_refused += 1;
+                }
+                Arc::new(d)
+            });
         Some(Row {
             channel: &s.name,
             outcome,
+            reestimated,
         })
     }
 }
@@ -295,14 +335,200 @@ pub fn csv_fields(row: &Row) -> [String; 9] {
 }
 
 /// Writes every row of `replay` as CSV (header first) and returns the summary.
-pub fn write_csv<W: Write>(mut replay: Replay, out: W) -> Result<Summary, csv::Error> {
+pub fn write_csv<W: Write>(replay: Replay, out: W) -> Result<Summary, csv::Error> {
+    write_csv_observed(replay, out, |_| {})
+}
+
+/// [`write_csv`], showing each row to `observe` as well (e.g. [`Traces::push`] for a report), so a history is
+/// replayed once whatever is made of it.
+pub fn write_csv_observed<W: Write>(
+    mut replay: Replay,
+    out: W,
+    mut observe: impl FnMut(&Row),
+) -> Result<Summary, csv::Error> {
     let mut w = csv::Writer::from_writer(out);
     w.write_record(CSV_HEADER)?;
     for row in replay.by_ref() {
         w.write_record(csv_fields(&row))?;
+        observe(&row);
     }
     w.flush()?;
     Ok(replay.summary())
+}
+
+/// Flag kinds, as indices into per-kind arrays.
+const KINDS: usize = FlagKind::ALL.len();
+
+fn kind_index(kind: FlagKind) -> usize {
+    FlagKind::ALL.iter().position(|k| *k == kind).unwrap_or(0)
+}
+
+/// The flag kind called `name` (`spike`, `stuck`, ...), as output messages spell it.
+pub fn flag_kind(name: &str) -> Option<FlagKind> {
+    FlagKind::ALL.into_iter().find(|k| k.as_str() == name)
+}
+
+/// One channel's [`ChannelTrace`] under construction: the samples, and the flags still on.
+#[derive(Debug, Clone)]
+pub struct TraceBuilder {
+    trace: ChannelTrace,
+    severity: [Severity; KINDS],
+    /// Per kind, the index in `trace.flags` of its span while the flag is on.
+    open: [Option<usize>; KINDS],
+    active: FlagSet,
+}
+
+impl TraceBuilder {
+    /// A trace for `channel`, whose flags get their severity from `settings` (the channel's detectors).
+    pub fn new(channel: &str, settings: &FlagSettings) -> Self {
+        TraceBuilder {
+            trace: ChannelTrace {
+                channel: channel.to_string(),
+                ..ChannelTrace::default()
+            },
+            severity: FlagKind::ALL.map(|k| settings.severity(k)),
+            open: [None; KINDS],
+            active: FlagSet::EMPTY,
+        }
+    }
+
+    /// Samples recorded so far.
+    pub fn len(&self) -> usize {
+        self.trace.times.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.trace.times.is_empty()
+    }
+
+    /// Flags on after the last transition.
+    pub fn active(&self) -> FlagSet {
+        self.active
+    }
+
+    /// One sample that reached the filter: NaN for no value, an infinite `std` while the model is diffuse.
+    pub fn sample(&mut self, time: f64, raw: f64, estimate: f64, std: f64) {
+        let t = &mut self.trace;
+        t.times.push(time);
+        t.raw.push(raw);
+        t.estimate.push(estimate);
+        t.std.push(std);
+    }
+
+    /// Flags raised and cleared at `time`. A kind both cleared and raised at one sample is closed, then reopened;
+    /// raising a kind already on, or clearing one that is off, changes nothing.
+    pub fn flags(&mut self, time: f64, raised: FlagSet, cleared: FlagSet) {
+        for kind in cleared.iter() {
+            if let Some(i) = self.open[kind_index(kind)].take() {
+                self.trace.flags[i].end = Some(time);
+            }
+            self.active.remove(kind);
+        }
+        for kind in raised.iter() {
+            let slot = &mut self.open[kind_index(kind)];
+            if slot.is_none() {
+                *slot = Some(self.trace.flags.len());
+                self.trace.flags.push(FlagSpan {
+                    kind: kind.as_str().to_string(),
+                    severity: self.severity[kind_index(kind)].as_str().to_string(),
+                    start: time,
+                    end: None,
+                });
+            }
+            self.active.insert(kind);
+        }
+    }
+
+    /// The flags active at `time`, for a source that reports only those (the daemon's output messages): kinds that
+    /// appeared are raised, kinds that went away are cleared.
+    pub fn follow(&mut self, time: f64, active: FlagSet) {
+        let raised = active
+            .iter()
+            .filter(|k| !self.active.contains(*k))
+            .collect();
+        let cleared = self
+            .active
+            .iter()
+            .filter(|k| !active.contains(*k))
+            .collect();
+        self.flags(time, raised, cleared);
+    }
+
+    /// A parameter change at `time`, in words: the hook for live re-estimation, whose swaps are to be marked here
+    /// (`obs_var 0.04 -> 0.05`) once channels report them.
+    pub fn change(&mut self, time: f64, description: impl Into<String>) {
+        self.trace.changes.push((time, description.into()));
+    }
+
+    /// The finished trace; flags still on keep `end: None`.
+    pub fn finish(self) -> ChannelTrace {
+        self.trace
+    }
+}
+
+/// What a replay report draws, collected row by row from a [`Replay`]: one [`TraceBuilder`] per series.
+#[derive(Debug, Clone)]
+pub struct Traces {
+    builders: Vec<TraceBuilder>,
+    by_name: HashMap<String, usize>,
+}
+
+impl Traces {
+    /// One trace per series of `replay`, in input order, with the severities its channels' detectors use.
+    /// Build it before the replay runs.
+    pub fn new(replay: &Replay) -> Self {
+        let builders = replay
+            .series
+            .iter()
+            .zip(&replay.channels)
+            .map(|(s, c)| TraceBuilder::new(&s.name, c.detectors().settings()))
+            .collect();
+        let by_name = replay
+            .series
+            .iter()
+            .enumerate()
+            .map(|(i, s)| (s.name.clone(), i))
+            .collect();
+        Traces { builders, by_name }
+    }
+
+    /// Takes one replayed row. Late, duplicate and rejected samples never reached the filter, so they are not
+    /// drawn; their flag transitions (if any) still count.
+    pub fn push(&mut self, row: &Row) {
+        let Some(&i) = self.by_name.get(row.channel) else {
+            return;
+        };
+        let b = &mut self.builders[i];
+        let o = &row.outcome;
+        if let (Some(step), false) = (
+            o.step,
+            matches!(
+                o.status,
+                SampleStatus::Late | SampleStatus::Duplicate | SampleStatus::Rejected
+            ),
+        ) {
+            b.sample(o.time, o.raw, step.estimate, o.std());
+        }
+        b.flags(o.time, o.flags.raised, o.flags.cleared);
+        if let Some(d) = row.reestimated.as_ref().filter(|d| d.accepted()) {
+            b.change(o.time, crate::reestimate::describe_change(d));
+        }
+    }
+
+    /// A parameter change on `channel` (see [`TraceBuilder::change`]); unknown channels are ignored.
+    pub fn change(&mut self, channel: &str, time: f64, description: impl Into<String>) {
+        if let Some(&i) = self.by_name.get(channel) {
+            self.builders[i].change(time, description);
+        }
+    }
+
+    /// The traces, in input order, for [`crate::html_report::replay_report`].
+    pub fn finish(self) -> Vec<ChannelTrace> {
+        self.builders
+            .into_iter()
+            .map(TraceBuilder::finish)
+            .collect()
+    }
 }
 
 #[cfg(test)]
@@ -440,6 +666,46 @@ mod tests {
         assert!(dup[3].is_empty() && dup[4].is_empty());
     }
 
+    /// With `[reestimate]` on, replay runs the live schedule: a channel whose noise grew learns it, the change
+    /// rides on the row that triggered it, the summary counts it and the report trace marks it.
+    #[test]
+    fn replay_applies_the_reestimation_schedule() {
+        let text = "[channels.default]\nmodel = \"level\"\ninterval = 1.0\nobs_var = 0.5\nlevel_var = 0.01\n\
+                    [reestimate]\nenabled = true\nwindow = 1000\nevery_s = 250\n";
+        let cfg = Config::from_str(text, "r.toml").unwrap().channels;
+        let mut noise = crate::simulate::Noise::new(8);
+        let mut level = 0.0;
+        let (times, values): (Vec<f64>, Vec<f64>) = (0..3000)
+            .map(|k| {
+                level += 0.1 * noise.normal();
+                (k as f64, level + 2.0f64.sqrt() * noise.normal())
+            })
+            .unzip();
+        let s = vec![series("PT-401", &times, &values)];
+        let mut replay = Replay::new(&cfg, &s).unwrap();
+        let mut traces = Traces::new(&replay);
+        let mut last_obs_var = 0.5;
+        for row in replay.by_ref() {
+            traces.push(&row);
+            if let Some(d) = row.reestimated.as_ref().filter(|d| d.accepted()) {
+                if let crate::model::ModelParams::Level { obs_var, .. } = d.new.params {
+                    last_obs_var = obs_var;
+                }
+            }
+        }
+        let sum = replay.summary();
+        assert!(sum.reestimated >= 2, "{sum:?}");
+        assert!((last_obs_var - 2.0).abs() < 0.3, "{last_obs_var}");
+        assert!(sum.to_string().contains("re-estimation(s) taken"), "{sum}");
+        let changes = &traces.finish()[0].changes;
+        assert_eq!(changes.len(), sum.reestimated);
+        assert!(
+            changes[0].1.starts_with("obs_var 0.5000 -> 1.0000"),
+            "{changes:?}"
+        );
+        assert!(changes[0].1.contains("(limited)"), "{changes:?}");
+    }
+
     #[test]
     fn duplicate_channel_names_are_refused() {
         let s = vec![series("a", &[0.0], &[1.0]), series("a", &[0.0], &[1.0])];
@@ -448,6 +714,124 @@ mod tests {
             e,
             "two input series are both called 'a'; channel names must be unique"
         );
+    }
+
+    /// A history with a spike run (three single spikes) and a stuck stretch on TT-101, and TT-102 stuck until
+    /// the end; white noise around the lag's mean otherwise.
+    fn faulty_history() -> Vec<Series> {
+        let mut noise = crate::simulate::Noise::new(11);
+        let n = 240;
+        let times: Vec<f64> = (0..n).map(|i| i as f64 * 10.0).collect();
+        let mut a: Vec<f64> = (0..n).map(|_| 70.0 + 0.3 * noise.normal()).collect();
+        let mut b: Vec<f64> = (0..n).map(|_| 70.0 + 0.3 * noise.normal()).collect();
+        for k in [50, 53, 56] {
+            a[k] += 6.0;
+        }
+        for k in 120..170 {
+            a[k] = a[119];
+        }
+        for k in 200..n {
+            b[k] = b[199];
+        }
+        vec![series("TT-101", &times, &a), series("TT-102", &times, &b)]
+    }
+
+    #[test]
+    fn traces_hold_the_samples_and_flag_spans() {
+        let s = faulty_history();
+        let cfg = config();
+        let mut replay = Replay::new(&cfg, &s).unwrap();
+        let mut traces = Traces::new(&replay);
+        let mut raised = 0;
+        for row in replay.by_ref() {
+            raised += row.outcome.flags.raised.len();
+            traces.push(&row);
+        }
+        traces.change("TT-101", 1000.0, "obs_var 0.04 -> 0.05");
+        traces.change("no-such-tag", 1000.0, "ignored");
+        let traces = traces.finish();
+        assert_eq!(traces.len(), 2);
+        let (a, b) = (&traces[0], &traces[1]);
+        assert_eq!(a.channel, "TT-101");
+        assert_eq!(a.times, s[0].times);
+        assert_eq!(a.raw, s[0].values);
+        assert!(a.estimate.iter().all(|e| e.is_finite()));
+        assert_eq!(
+            a.changes,
+            vec![(1000.0, "obs_var 0.04 -> 0.05".to_string())]
+        );
+        assert_eq!(
+            raised,
+            a.flags.len() + b.flags.len(),
+            "one span per raise: {a:?}"
+        );
+        let spans = |t: &ChannelTrace, kind: &str| -> Vec<FlagSpan> {
+            t.flags.iter().filter(|f| f.kind == kind).cloned().collect()
+        };
+        // The spikes: raised at the first, held through the others by the 60 s off-delay, then cleared.
+        let spike = spans(a, "spike");
+        assert_eq!(spike.len(), 1, "{spike:?}");
+        assert_eq!(spike[0].start, 500.0);
+        assert_eq!(spike[0].severity, "low");
+        assert!(spike[0].end.is_some_and(|e| e >= 560.0 + 60.0), "{spike:?}");
+        // The stuck stretch: raised after the window of 30 samples, cleared when the value moves at 1700 s.
+        let stuck = spans(a, "stuck");
+        assert_eq!(stuck.len(), 1, "{stuck:?}");
+        assert!((1200.0..1700.0).contains(&stuck[0].start), "{stuck:?}");
+        assert_eq!(stuck[0].end, Some(1700.0));
+        assert_eq!(stuck[0].severity, "high");
+        // Stuck until the end: still on.
+        let open = spans(b, "stuck");
+        assert_eq!(open.len(), 1, "{open:?}");
+        assert_eq!(open[0].end, None);
+    }
+
+    #[test]
+    fn write_csv_observed_shows_every_row() {
+        let s = faulty_history();
+        let cfg = config();
+        let mut seen = 0;
+        let mut out = Vec::new();
+        let sum =
+            write_csv_observed(Replay::new(&cfg, &s).unwrap(), &mut out, |_| seen += 1).unwrap();
+        assert_eq!(seen, sum.rows);
+        assert_eq!(
+            String::from_utf8(out).unwrap().lines().count(),
+            sum.rows + 1
+        );
+    }
+
+    #[test]
+    fn trace_builder_follows_active_flags() {
+        use crate::detect::FlagDesign;
+        let settings = FlagDesign::default().resolve(1.0).unwrap();
+        let mut b = TraceBuilder::new("FT-201", &settings);
+        let set = |kinds: &[FlagKind]| kinds.iter().copied().collect::<FlagSet>();
+        b.follow(1.0, set(&[]));
+        b.follow(2.0, set(&[FlagKind::Spike]));
+        b.follow(3.0, set(&[FlagKind::Spike, FlagKind::Stuck]));
+        b.follow(4.0, set(&[FlagKind::Stuck]));
+        b.follow(5.0, set(&[FlagKind::Stuck, FlagKind::Spike]));
+        assert_eq!(b.active(), set(&[FlagKind::Spike, FlagKind::Stuck]));
+        // A kind cleared and raised at one sample: closed, then reopened.
+        b.flags(6.0, set(&[FlagKind::Stuck]), set(&[FlagKind::Stuck]));
+        let got: Vec<(String, f64, Option<f64>)> = b
+            .finish()
+            .flags
+            .into_iter()
+            .map(|f| (f.kind, f.start, f.end))
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ("spike".into(), 2.0, Some(4.0)),
+                ("stuck".into(), 3.0, Some(6.0)),
+                ("spike".into(), 5.0, None),
+                ("stuck".into(), 6.0, None),
+            ]
+        );
+        assert_eq!(flag_kind("stuck"), Some(FlagKind::Stuck));
+        assert_eq!(flag_kind("drift"), None);
     }
 
     #[test]

@@ -367,6 +367,142 @@ fn fit_cli_writes_the_report_and_prints_the_same() {
     assert_eq!(failed.stdout, plain.stdout);
 }
 
+/// A Brackenfield Works history for `replay`: TT-101 every 10 s with three single spikes (at rows 50, 53 and 56)
+/// and a stuck stretch (rows 120 to 169 repeat row 119), FT-201 healthy, and a configuration for both.
+fn faulty_history(dir: &Path) -> (PathBuf, PathBuf) {
+    let mut noise = Noise(42);
+    let mut normal = || (0..12).map(|_| noise.next()).sum::<f64>();
+    let n = 240;
+    let mut tt: Vec<f64> = (0..n).map(|_| 70.0 + 0.3 * normal()).collect();
+    let ft: Vec<f64> = (0..n).map(|_| 12.0 + 0.3 * normal()).collect();
+    for k in [50, 53, 56] {
+        tt[k] += 6.0;
+    }
+    for k in 120..170 {
+        tt[k] = tt[119];
+    }
+    let mut csv = String::from("time,TT-101,FT-201\n");
+    for i in 0..n {
+        csv.push_str(&format!(
+            "{},{},{}\n",
+            START + 10.0 * i as f64,
+            tt[i],
+            ft[i]
+        ));
+    }
+    let input = dir.join("brackenfield.csv");
+    std::fs::write(&input, csv).unwrap();
+    let config = dir.join("plant.toml");
+    std::fs::write(
+        &config,
+        "[channels.default]\nmodel = \"level\"\ninterval = 10.0\nobs_var = 0.09\nlevel_var = 0.0001\n\n\
+         [[channels.override]]\nmatch = \"TT-*\"\nmodel = \"lag\"\ninterval = 10.0\nmean = 70.0\ntau = 300.0\n\
+         state_var = 0.001\nobs_var = 0.09\n",
+    )
+    .unwrap();
+    (input, config)
+}
+
+#[test]
+fn replay_cli_writes_a_report_with_the_flag_spans() {
+    let dir = tempfile::tempdir().unwrap();
+    let (input, config) = faulty_history(dir.path());
+    let path = dir.path().join("replay.html");
+    let bin = env!("CARGO_BIN_EXE_gaugewise");
+    let replay = |extra: &[&std::ffi::OsStr]| {
+        Command::new(bin)
+            .arg("replay")
+            .arg("--config")
+            .arg(&config)
+            .arg("--input")
+            .arg(&input)
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let plain = replay(&[]);
+    assert!(
+        plain.status.success(),
+        "{}",
+        String::from_utf8_lossy(&plain.stderr)
+    );
+    let with = replay(&["--report".as_ref(), path.as_os_str()]);
+    assert!(
+        with.status.success(),
+        "{}",
+        String::from_utf8_lossy(&with.stderr)
+    );
+    // The report changes nothing else: same CSV, same summary.
+    assert_eq!(with.stdout, plain.stdout);
+    assert_eq!(with.stderr, plain.stderr);
+
+    let html = std::fs::read_to_string(&path).unwrap();
+    let doc = parse_valid(&html);
+    self_contained(&doc);
+    let found = plots(&doc);
+    assert_eq!(
+        found.iter().map(|p| p.0.as_str()).collect::<Vec<_>>(),
+        vec!["channel-0", "channel-1"]
+    );
+    // The summary table names the injected faults' kinds on TT-101, each raised once.
+    let rows: Vec<Vec<String>> = doc
+        .select(&sel("table.flag-summary tbody tr"))
+        .map(|tr| {
+            tr.select(&sel("td"))
+                .map(|td| td.text().collect::<String>().trim().to_string())
+                .collect()
+        })
+        .collect();
+    let tt: Vec<(&str, &str, &str)> = rows
+        .iter()
+        .filter(|r| r[0] == "TT-101" && r.len() == 7)
+        .map(|r| (r[1].as_str(), r[2].as_str(), r[3].as_str()))
+        .collect();
+    assert!(tt.contains(&("spike", "low", "1")), "{rows:?}");
+    assert!(tt.contains(&("stuck", "high", "1")), "{rows:?}");
+    // Spikes from row 50 (2026-03-02 00:08:20 UTC); the stuck value moves again at row 170 (00:28:20).
+    let spike = rows
+        .iter()
+        .find(|r| r[0] == "TT-101" && r[1] == "spike")
+        .unwrap();
+    assert_eq!(spike[5], "2026-03-02 00:08:20");
+    let stuck = rows
+        .iter()
+        .find(|r| r[0] == "TT-101" && r[1] == "stuck")
+        .unwrap();
+    assert_eq!(stuck[6], "2026-03-02 00:28:20");
+    // Both spans are shaded on TT-101's plot, and listed in its on/off table.
+    assert!(count(series_group(&doc, "channel-0", "flags"), "rect") >= 2);
+    let on_off: Vec<String> = doc
+        .select(&sel(
+            "section#channel-0 table.flags tbody tr td:first-child",
+        ))
+        .map(|td| td.text().collect())
+        .collect();
+    assert!(
+        on_off.contains(&"spike".to_string()) && on_off.contains(&"stuck".to_string()),
+        "{on_off:?}"
+    );
+    // Every sample is drawn or summarised: the raw line exists and nothing is parameter-changed yet.
+    assert!(count(series_group(&doc, "channel-0", "raw"), "polyline") >= 1);
+    assert_eq!(
+        count(series_group(&doc, "channel-0", "changes"), "polyline"),
+        0
+    );
+
+    // A report that cannot be written: exit 1, one line, after the CSV as usual.
+    let bad = dir.path().join("no-such-dir").join("replay.html");
+    let failed = replay(&["--report".as_ref(), bad.as_os_str()]);
+    assert_eq!(failed.status.code(), Some(1));
+    assert_eq!(failed.stdout, plain.stdout);
+    let err = String::from_utf8_lossy(&failed.stderr);
+    let last = err.lines().last().unwrap_or("");
+    assert!(
+        last.starts_with("error: cannot write the report ") && last.contains("replay.html"),
+        "{err}"
+    );
+}
+
 /// What one headless Chromium run left behind.
 struct Rendering {
     console: Vec<String>,

@@ -163,6 +163,8 @@ pub struct OutputConfig {
     pub retain: bool,
     /// `output.flags_topic` if given; [`DaemonConfig::flags_topic`] has the default filled in.
     pub flags_topic: Option<String>,
+    /// `output.params_topic` if given; [`DaemonConfig::params_topic`] has the default filled in.
+    pub params_topic: Option<String>,
 }
 
 /// Staleness: a channel silent for `stale_after_s` publishes predictions every `stale_every_s`.
@@ -195,6 +197,16 @@ impl Default for LimitsConfig {
         }
     }
 }
+
+/// The HTTP endpoint for Prometheus metrics (`/metrics`) and health (`/health`): on only when a `[metrics]` table is
+/// given, and then on the loopback interface unless `listen` says otherwise.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct MetricsConfig {
+    pub listen: std::net::SocketAddr,
+}
+
+/// Where the metrics endpoint listens when `[metrics]` gives no `listen`.
+pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:9464";
 
 // ---------------------------------------------------------------------------------------------------------------
 // Raw sections, as serde reads them.
@@ -248,6 +260,7 @@ pub(super) struct RawInput {
 pub(super) struct RawOutput {
     topic: Option<String>,
     flags_topic: Option<String>,
+    params_topic: Option<String>,
     qos: Option<i64>,
     retain: Option<bool>,
 }
@@ -269,6 +282,12 @@ pub(super) struct RawTiming {
 #[serde(deny_unknown_fields, expecting = "a [limits] table")]
 pub(super) struct RawLimits {
     max_channels: Option<i64>,
+}
+
+#[derive(Debug, Default, Clone, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "a [metrics] table")]
+pub(super) struct RawMetrics {
+    listen: Option<String>,
 }
 
 // ---------------------------------------------------------------------------------------------------------------
@@ -677,11 +696,21 @@ pub(super) fn output(raw: &RawOutput, ctx: &Ctx) -> Result<OutputConfig, ConfigE
             ));
         }
     }
+    if let Some(params) = &raw.params_topic {
+        check_channel_template(params, "output.params_topic", ctx)?;
+        if *params == topic || Some(params) == raw.flags_topic.as_ref() {
+            return Err(ctx.invalid(
+                "output.params_topic",
+                "must differ from output.topic and output.flags_topic: subscribers tell messages apart by topic",
+            ));
+        }
+    }
     Ok(OutputConfig {
         topic,
         qos: ctx.qos("output.qos", raw.qos, 0)?,
         retain: raw.retain.unwrap_or(false),
         flags_topic: raw.flags_topic.clone(),
+        params_topic: raw.params_topic.clone(),
     })
 }
 
@@ -745,6 +774,26 @@ pub(super) fn limits(raw: &RawLimits, ctx: &Ctx) -> Result<LimitsConfig, ConfigE
     })
 }
 
+pub(super) fn metrics(raw: &RawMetrics, ctx: &Ctx) -> Result<MetricsConfig, ConfigError> {
+    let text = raw.listen.as_deref().unwrap_or(DEFAULT_METRICS_LISTEN);
+    let listen: std::net::SocketAddr = text.trim().parse().map_err(|_| {
+        ctx.invalid(
+            "metrics.listen",
+            format!(
+                "must be an IP address and port such as \"127.0.0.1:9464\" or \"[::1]:9464\" (got {text:?}); host \
+                 names are not resolved"
+            ),
+        )
+    })?;
+    if listen.port() == 0 {
+        return Err(ctx.invalid(
+            "metrics.listen",
+            format!("needs a fixed port, 1 to 65535, that the scraper can be told (got {text:?})"),
+        ));
+    }
+    Ok(MetricsConfig { listen })
+}
+
 /// The default status topic of a daemon with this client id.
 pub fn default_status_topic(client_id: &str) -> String {
     format!("gaugewise/{client_id}/status")
@@ -753,6 +802,11 @@ pub fn default_status_topic(client_id: &str) -> String {
 /// Where flag changes go when `output.flags_topic` is not set.
 pub fn default_flags_topic(client_id: &str) -> String {
     format!("gaugewise/{client_id}/flags/{{channel}}")
+}
+
+/// Where accepted parameter changes go when `output.params_topic` is not set.
+pub fn default_params_topic(client_id: &str) -> String {
+    format!("gaugewise/{client_id}/params/{{channel}}")
 }
 
 // ---------------------------------------------------------------------------------------------------------------
@@ -1001,9 +1055,13 @@ pub struct DaemonConfig {
     pub status_topic: String,
     /// Retained flag-change messages, a template with `{channel}`.
     pub flags_topic: String,
+    /// Retained parameter-change messages of re-estimation, a template with `{channel}`.
+    pub params_topic: String,
     pub stale_after_s: Option<f64>,
     pub stale_every_s: f64,
     pub max_channels: usize,
+    /// The metrics endpoint; None: off (no `[metrics]` table).
+    pub metrics: Option<MetricsConfig>,
     /// Environment variables that overrode keys, as `VAR -> key` (values are not kept: one may be a password).
     pub env_overrides: Vec<String>,
 }
@@ -1082,6 +1140,10 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         .flags_topic
         .clone()
         .unwrap_or_else(|| default_flags_topic(&broker.client_id));
+    let params_topic = output
+        .params_topic
+        .clone()
+        .unwrap_or_else(|| default_params_topic(&broker.client_id));
     let slash_names = config.inputs.iter().any(|i| i.channel.may_contain_slash());
     for (i, input) in config.inputs.iter().enumerate() {
         if filter_may_receive(&input.topic, &output.topic, slash_names) {
@@ -1126,6 +1188,21 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
                 ),
             ));
         }
+        if filter_may_receive(&input.topic, &params_topic, slash_names) {
+            let key = if output.params_topic.is_some() {
+                "output.params_topic".to_string()
+            } else {
+                format!("inputs[{i}].topic")
+            };
+            return Err(ctx.invalid(
+                key,
+                format!(
+                    "the params topic {params_topic:?} can be matched by inputs[{i}].topic {:?}: the daemon would \
+                     read its own parameter messages back as samples",
+                    input.topic
+                ),
+            ));
+        }
     }
     Ok(DaemonConfig {
         source: ctx.file.to_string(),
@@ -1135,9 +1212,11 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         output,
         status_topic,
         flags_topic,
+        params_topic,
         stale_after_s: config.timing.stale_after_s,
         stale_every_s: config.timing.stale_every_s,
         max_channels: config.limits.max_channels,
+        metrics: config.metrics,
         env_overrides: config
             .env
             .iter()
@@ -1271,6 +1350,23 @@ impl DaemonConfig {
             }
         }
         let _ = writeln!(s, "limits: at most {} channels", self.max_channels);
+        match &self.metrics {
+            None => {
+                let _ = writeln!(s, "metrics: off");
+            }
+            Some(m) => {
+                let reach = if m.listen.ip().is_loopback() {
+                    "this host only"
+                } else {
+                    "reachable from other hosts, without authentication"
+                };
+                let _ = writeln!(
+                    s,
+                    "metrics: http://{}/metrics and /health ({reach})",
+                    m.listen
+                );
+            }
+        }
         let _ = writeln!(
             s,
             "channels (the first matching override wins, else the default):"
@@ -1297,6 +1393,29 @@ impl DaemonConfig {
         for (i, (pattern, design)) in flags.overrides.iter().enumerate() {
             let _ = writeln!(s, "  override[{i}] {pattern}: {}", design.summary());
         }
+        let learn = &self.channels.learn;
+        let line = |l: Option<&crate::reestimate::LearnSettings>| {
+            match l {
+            None => "off".to_string(),
+            Some(l) => format!(
+                "every {} s on the last {} samples (from {} usable), gain >= {} nats, variances x{} at most per step",
+                l.every_s, l.window, l.min_samples, l.min_gain, l.max_factor
+            ),
+        }
+        };
+        let _ = writeln!(
+            s,
+            "re-estimation (the first matching override wins, else the default):"
+        );
+        let _ = writeln!(s, "  default: {}", line(learn.default.as_ref()));
+        for (i, (pattern, l)) in learn.overrides.iter().enumerate() {
+            let _ = writeln!(s, "  override[{i}] {pattern}: {}", line(l.as_ref()));
+        }
+        let _ = writeln!(
+            s,
+            "params: {} (retained, QoS 1, on every accepted re-estimation)",
+            self.params_topic
+        );
         s
     }
 }
@@ -1374,6 +1493,7 @@ mod tests {
                 qos: 0,
                 retain: false,
                 flags_topic: None,
+                params_topic: None,
             }
         );
         assert_eq!(d.status_topic, "gaugewise/gw-01/status");
@@ -2077,5 +2197,63 @@ mod tests {
                 "expected {expected}\ngot {m}"
             );
         }
+    }
+
+    #[test]
+    fn metrics_are_off_unless_the_table_is_given() {
+        let d = load(&full("")).unwrap();
+        assert_eq!(d.metrics, None);
+        assert!(d.describe().contains("metrics: off"), "{}", d.describe());
+
+        let d = load(&full("[metrics]\n")).unwrap();
+        let m = d.metrics.unwrap();
+        assert_eq!(m.listen.to_string(), DEFAULT_METRICS_LISTEN);
+        assert!(m.listen.ip().is_loopback());
+        assert!(d
+            .describe()
+            .contains("metrics: http://127.0.0.1:9464/metrics and /health (this host only)"));
+
+        let d = load(&with("[metrics]", "listen = \"[::1]:9100\"")).unwrap();
+        assert_eq!(d.metrics.unwrap().listen.to_string(), "[::1]:9100");
+        let d = load(&with("[metrics]", "listen = \"0.0.0.0:9464\"")).unwrap();
+        assert!(d.describe().contains("reachable from other hosts"));
+    }
+
+    #[test]
+    fn metrics_errors_name_the_key() {
+        for (value, needle) in [
+            ("\"localhost:9464\"", "host names are not resolved"),
+            ("\"127.0.0.1\"", "an IP address and port"),
+            ("\"127.0.0.1:0\"", "needs a fixed port"),
+            ("9464", "invalid type"),
+        ] {
+            let m = message(&with("[metrics]", &format!("listen = {value}")));
+            assert!(m.contains("metrics.listen"), "{m}");
+            assert!(m.contains(needle), "{value}: {m}");
+        }
+        let m = message(&with("[metrics]", "port = 9464"));
+        assert!(
+            m.contains("metrics.port") && m.contains("unknown field"),
+            "{m}"
+        );
+    }
+
+    #[test]
+    fn metrics_from_the_environment() {
+        let c = Config::from_str_with_env(
+            &full(""),
+            FILE,
+            [("GAUGEWISE_METRICS__LISTEN", "127.0.0.1:9500")],
+        )
+        .unwrap();
+        assert_eq!(c.metrics.unwrap().listen.port(), 9500);
+        let e =
+            Config::from_str_with_env(&full(""), FILE, [("GAUGEWISE_METRICS__LISTEN", "nowhere")])
+                .unwrap_err()
+                .to_string();
+        assert!(
+            e.contains("metrics.listen") && e.contains("(environment GAUGEWISE_METRICS__LISTEN)"),
+            "{e}"
+        );
     }
 }

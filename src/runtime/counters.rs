@@ -52,6 +52,12 @@ pub struct Counters {
     pub withheld: AtomicU64,
     /// Flags raised, by kind in `detect::FlagKind::ALL` order.
     pub flags_raised: [AtomicU64; 6],
+    /// Re-estimations whose parameters were taken.
+    pub reestimate_accepted: AtomicU64,
+    /// Re-estimations refused: the fit did not converge; the gain was too small; the task failed.
+    pub reestimate_not_converged: AtomicU64,
+    pub reestimate_no_gain: AtomicU64,
+    pub reestimate_failed: AtomicU64,
     rejected_total: AtomicU64,
     rejected: Mutex<HashMap<(&'static str, String), u64>>,
 }
@@ -70,6 +76,9 @@ pub struct CounterSnapshot {
     pub withheld: u64,
     /// Flags raised, by kind in `detect::FlagKind::ALL` order.
     pub flags_raised: [u64; 6],
+    pub reestimate_accepted: u64,
+    /// Refused re-estimations, all reasons together.
+    pub reestimate_refused: u64,
     /// Rejections per reason and channel (or topic, when no channel could be named), sorted.
     pub rejected_by: BTreeMap<(String, String), u64>,
 }
@@ -111,6 +120,10 @@ impl Counters {
             reconnects: get(&self.reconnects),
             withheld: get(&self.withheld),
             flags_raised: std::array::from_fn(|i| get(&self.flags_raised[i])),
+            reestimate_accepted: get(&self.reestimate_accepted),
+            reestimate_refused: get(&self.reestimate_not_converged)
+                + get(&self.reestimate_no_gain)
+                + get(&self.reestimate_failed),
             rejected_by: map
                 .iter()
                 .map(|((r, k), n)| ((r.to_string(), k.clone()), *n))
@@ -156,7 +169,15 @@ impl fmt::Display for CounterSnapshot {
             self.reconnects,
             self.withheld,
             self.flags_raised.iter().sum::<u64>()
-        )
+        )?;
+        if self.reestimate_accepted + self.reestimate_refused > 0 {
+            write!(
+                f,
+                " reestimated={} reestimate_refused={}",
+                self.reestimate_accepted, self.reestimate_refused
+            )?;
+        }
+        Ok(())
     }
 }
 

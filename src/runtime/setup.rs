@@ -37,6 +37,8 @@ pub fn from_config(
         .map_err(|e| RuntimeError::Settings(format!("output.topic: {e}")))?;
     let flags = OutputTopic::parse(&config.flags_topic)
         .map_err(|e| RuntimeError::Settings(format!("output.flags_topic: {e}")))?;
+    let params = OutputTopic::parse(&config.params_topic)
+        .map_err(|e| RuntimeError::Settings(format!("output.params_topic: {e}")))?;
     let subscriptions = config
         .inputs
         .iter()
@@ -95,6 +97,7 @@ pub fn from_config(
             router: Router::new(rules),
             output,
             flags,
+            params,
         },
     ))
 }
