@@ -15,7 +15,7 @@
 
 use crate::detect::{Admit, DesignError, Detectors, FlagDesign, FlagUpdate};
 use crate::filter::{Filter, Step, StepKind};
-use crate::model::{ModelError, ModelSpec};
+use crate::model::{ModelError, ModelKind, ModelSpec};
 use serde::Serialize;
 use thiserror::Error;
 
@@ -84,6 +84,32 @@ impl Outcome {
     }
 }
 
+/// The stand-in a channel runs while it learns its parameters: a local level whose two variances are both set
+/// from the data seen so far (see [`Learning`]). A level assumes nothing about the signal's mean or dynamics, so
+/// the estimate follows the data, and equal variances make its std a fair, not an optimistic, account.
+pub fn provisional_model(interval: f64) -> ModelSpec {
+    ModelSpec {
+        interval,
+        params: crate::model::ModelParams::Level {
+            obs_var: 1.0,
+            level_var: 1.0,
+        },
+    }
+}
+
+/// A channel with no configured parameters, until its first fit: the kind it is to learn and the running mean
+/// square of its first differences, which sizes the provisional model (for a level with equal variances s,
+/// E[(y_t - y_t-1)^2] = 3 s).
+#[derive(Debug, Clone, PartialEq)]
+struct Learning {
+    target: ModelKind,
+    last: f64,
+    sum_d2: f64,
+    n_d: u32,
+    /// The variance the provisional model runs with now.
+    scale: f64,
+}
+
 /// A channel's filter, detectors and ordering state.
 #[derive(Debug, Clone)]
 pub struct Channel {
@@ -91,6 +117,7 @@ pub struct Channel {
     filter: Filter,
     detectors: Detectors,
     last_time: Option<f64>,
+    learning: Option<Box<Learning>>,
 }
 
 impl Channel {
@@ -106,7 +133,41 @@ impl Channel {
             detectors: Detectors::new(design.resolve(spec.interval)?),
             spec: spec.clone(),
             last_time: None,
+            learning: None,
         })
+    }
+
+    /// A channel with no configured parameters: it runs [`provisional_model`] with the `learning` flag raised
+    /// and no other flag (their thresholds would mean nothing on a stand-in model) until [`Channel::learned`]
+    /// gives it a fitted model of kind `target`.
+    pub fn learning(
+        target: ModelKind,
+        interval: f64,
+        design: &FlagDesign,
+    ) -> Result<Self, ChannelError> {
+        let mut c = Channel::with_flags(&provisional_model(interval), design)?;
+        c.learning = Some(Box::new(Learning {
+            target,
+            last: f64::NAN,
+            sum_d2: 0.0,
+            n_d: 0,
+            scale: 1.0,
+        }));
+        Ok(c)
+    }
+
+    /// The model kind the channel is still learning, if it is.
+    pub fn learning_target(&self) -> Option<ModelKind> {
+        self.learning.as_ref().map(|l| l.target)
+    }
+
+    /// Ends learning at channel time `t`: runs `spec` from the next sample (the filter carries its state over
+    /// when the kind allows, else starts from the new model's prior) and clears the `learning` flag. The flag
+    /// change is returned for publishing.
+    pub fn learned(&mut self, spec: &ModelSpec, t: f64) -> Result<FlagUpdate, ChannelError> {
+        self.set_model(spec)?;
+        self.learning = None;
+        Ok(self.detectors.set_learning(t, false))
     }
 
     pub fn detectors(&self) -> &Detectors {
@@ -195,6 +256,9 @@ impl Channel {
             None => 0.0,
         };
         self.last_time = Some(t);
+        if self.learning.is_some() {
+            return self.on_learning_sample(t, dt, raw);
+        }
         let step = match self.detectors.admit(value) {
             Admit::Filter(gate) => self.filter.step_gated(dt, Some(raw), gate),
             Admit::Withhold => self.filter.step(dt, None),
@@ -205,6 +269,54 @@ impl Channel {
             _ => SampleStatus::Ok,
         };
         let flags = self.detectors.observe(t, value, &step);
+        Outcome {
+            time: t,
+            raw,
+            status,
+            step: Some(step),
+            flags,
+        }
+    }
+}
+
+impl Channel {
+    /// A sample while learning: the provisional model is resized from the data, then filters the value; only
+    /// the `learning` flag is kept (and raised at the first sample).
+    fn on_learning_sample(&mut self, t: f64, dt: f64, raw: f64) -> Outcome {
+        let mut flags = self.detectors.set_learning(t, true);
+        let l = self.learning.as_mut().expect("learning");
+        if !raw.is_nan() {
+            if !l.last.is_nan() {
+                l.sum_d2 += (raw - l.last).powi(2);
+                l.n_d += 1;
+            }
+            l.last = raw;
+        }
+        if l.n_d > 0 {
+            let s = (l.sum_d2 / f64::from(l.n_d) / 3.0).max(f64::MIN_POSITIVE);
+            // Resize only on a real change: each resize leaves the steady-state shortcut.
+            if (s / l.scale - 1.0).abs() > 0.1 {
+                l.scale = s;
+                let mut spec = provisional_model(self.spec.interval);
+                spec.params = crate::model::ModelParams::Level {
+                    obs_var: s,
+                    level_var: s,
+                };
+                if let Ok(f) = Filter::new(&spec) {
+                    let mut f = f;
+                    f.adopt(&self.filter);
+                    self.filter = f;
+                    self.spec = spec;
+                }
+            }
+        }
+        let step = self.filter.step(dt, Some(raw));
+        let status = if step.kind == StepKind::Missing {
+            SampleStatus::Missing
+        } else {
+            SampleStatus::Ok
+        };
+        flags.active = self.detectors.active();
         Outcome {
             time: t,
             raw,

@@ -144,6 +144,8 @@ pub struct Config {
 pub struct ChannelConfig {
     /// Used by every channel no override matches.
     pub default: ModelSpec,
+    /// The default table gave no parameters: channels learn a model of this kind from their data.
+    pub default_learn: Option<ModelKind>,
     /// Tried in order; the first whose pattern matches the channel name wins.
     pub overrides: Vec<Override>,
     /// Compiled `overrides[i].pattern`, kept beside the public fields so lookups do not recompile globs.
@@ -159,12 +161,15 @@ pub struct ChannelConfig {
 pub struct Override {
     pub pattern: String,
     pub model: ModelSpec,
+    /// The table gave no parameters: the channels learn them (`model` is then the provisional stand-in).
+    pub learn: Option<ModelKind>,
 }
 
 impl PartialEq for ChannelConfig {
     fn eq(&self, other: &Self) -> bool {
         // The matchers are derived from the patterns, so they need no comparison.
         self.default == other.default
+            && self.default_learn == other.default_learn
             && self.overrides == other.overrides
             && self.flags == other.flags
             && self.learn == other.learn
@@ -180,6 +185,7 @@ impl ChannelConfig {
             .collect::<Result<Vec<_>, _>>()?;
         Ok(Self {
             default,
+            default_learn: None,
             overrides,
             matchers,
             flags: FlagRules::default(),
@@ -199,6 +205,22 @@ impl ChannelConfig {
 
     /// The model of the first override whose pattern matches `channel`, else the default.
     pub fn model_for(&self, channel: &str) -> &ModelSpec {
+        match self.override_for(channel) {
+            Some(o) => &o.model,
+            None => &self.default,
+        }
+    }
+
+    /// The kind of model `channel` must learn from its data (its table gave no parameters); None when its
+    /// parameters are configured.
+    pub fn learning_for(&self, channel: &str) -> Option<ModelKind> {
+        match self.override_for(channel) {
+            Some(o) => o.learn,
+            None => self.default_learn,
+        }
+    }
+
+    fn override_for(&self, channel: &str) -> Option<&Override> {
         for (i, o) in self.overrides.iter().enumerate() {
             // The fields are public, so the cached matcher may be stale if a caller edited a pattern; recompile
             // then (an invalid edited pattern matches nothing) rather than match against the wrong glob.
@@ -207,10 +229,10 @@ impl ChannelConfig {
                 _ => Glob::new(&o.pattern).is_ok_and(|g| g.compile_matcher().is_match(channel)),
             };
             if hit {
-                return &o.model;
+                return Some(o);
             }
         }
-        &self.default
+        None
     }
 }
 
@@ -328,7 +350,7 @@ impl Config {
                     .to_string(),
             });
         }
-        let default = build_spec(&default, "channels.default", source)?;
+        let (default, default_learn) = build_spec(&default, "channels.default", source)?;
         let mut overrides = Vec::with_capacity(channels.overrides.len());
         let mut matchers = Vec::with_capacity(channels.overrides.len());
         for (i, raw) in channels.overrides.iter().enumerate() {
@@ -343,9 +365,13 @@ impl Config {
                 key: format!("{path}.match"),
                 message: format!("invalid glob: {}", e.kind()),
             })?;
-            let model = build_spec(raw, &path, source)?;
+            let (model, learn) = build_spec(raw, &path, source)?;
             matchers.push(glob.compile_matcher());
-            overrides.push(Override { pattern, model });
+            overrides.push(Override {
+                pattern,
+                model,
+                learn,
+            });
         }
         let intervals: Vec<f64> = std::iter::once(default.interval)
             .chain(overrides.iter().map(|o: &Override| o.model.interval))
@@ -361,6 +387,7 @@ impl Config {
         Ok(Config {
             channels: ChannelConfig {
                 default,
+                default_learn,
                 overrides,
                 matchers,
                 flags,
@@ -722,7 +749,13 @@ fn keys_of(kind: ModelKind) -> &'static [&'static str] {
     }
 }
 
-fn build_spec(raw: &RawModel, path: &str, file: &str) -> Result<ModelSpec, ConfigError> {
+/// The model a table describes. A table that gives a model kind and its interval but no parameter at all asks the
+/// channels to learn them: the result is then a provisional stand-in (see `channel`) and the kind to learn.
+fn build_spec(
+    raw: &RawModel,
+    path: &str,
+    file: &str,
+) -> Result<(ModelSpec, Option<ModelKind>), ConfigError> {
     let key = |k: &str| format!("{path}.{k}");
     let text = raw.model.as_deref().ok_or_else(|| ConfigError::Missing {
         file: file.to_string(),
@@ -751,6 +784,9 @@ fn build_spec(raw: &RawModel, path: &str, file: &str) -> Result<ModelSpec, Confi
         })
     };
     let interval = need("interval", raw.interval)?;
+    if raw.given() == ["interval"] {
+        return Ok((crate::channel::provisional_model(interval), Some(kind)));
+    }
     let params = match kind {
         ModelKind::Level => ModelParams::Level {
             obs_var: need("obs_var", raw.obs_var)?,
@@ -777,7 +813,7 @@ fn build_spec(raw: &RawModel, path: &str, file: &str) -> Result<ModelSpec, Confi
     };
     let spec = ModelSpec { interval, params };
     spec.validate().map_err(|e| model_error(e, path, file))?;
-    Ok(spec)
+    Ok((spec, None))
 }
 
 /// An ARMA coefficient list: required when its order is > 0 (may be omitted when 0), of exactly that length.

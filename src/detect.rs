@@ -45,6 +45,14 @@ use thiserror::Error;
 const DAY_S: f64 = 86_400.0;
 /// Stuck tolerance as a fraction of the one-step forecast std (see the module notes).
 pub const STUCK_FRACTION: f64 = 0.05;
+/// The `learning` flag: set and cleared by the channel, no hysteresis.
+const LEARNING: AlarmDesign = AlarmDesign {
+    enabled: true,
+    severity: Severity::Low,
+    on_delay: 0.0,
+    off_delay: 0.0,
+    deadband: 0.0,
+};
 /// A taken-in |z| above this fraction of the spike limit makes the next opposite outlier a recovery.
 const RECOVERY_FRACTION: f64 = 0.75;
 /// Siegmund's correction to the decision interval, 2 x 0.583 (Siegmund 1985).
@@ -59,16 +67,19 @@ pub enum FlagKind {
     Stuck,
     Stale,
     Range,
+    /// The channel has no configured parameters yet and runs a provisional model until its first fit.
+    Learning,
 }
 
 impl FlagKind {
-    pub const ALL: [FlagKind; 6] = [
+    pub const ALL: [FlagKind; 7] = [
         FlagKind::Spike,
         FlagKind::Noise,
         FlagKind::Bias,
         FlagKind::Stuck,
         FlagKind::Stale,
         FlagKind::Range,
+        FlagKind::Learning,
     ];
 
     pub fn as_str(self) -> &'static str {
@@ -79,6 +90,7 @@ impl FlagKind {
             FlagKind::Stuck => "stuck",
             FlagKind::Stale => "stale",
             FlagKind::Range => "range",
+            FlagKind::Learning => "learning",
         }
     }
 
@@ -418,7 +430,7 @@ impl FlagDesign {
 /// The numbers the detectors run on, for one nominal sample interval.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FlagSettings {
-    pub alarms: [AlarmDesign; 6],
+    pub alarms: [AlarmDesign; 7],
     /// |z| limit in sigmas; infinite when the spike flag is off.
     pub spike_limit: f64,
     pub spike_withhold: bool,
@@ -619,7 +631,7 @@ impl FlagDesign {
         }
         Ok(FlagSettings {
             alarms: [
-                self.spike, self.noise, self.bias, self.stuck, self.stale, self.range,
+                self.spike, self.noise, self.bias, self.stuck, self.stale, self.range, LEARNING,
             ],
             spike_limit: if self.spike.enabled {
                 spike_limit
@@ -722,7 +734,7 @@ pub enum Admit {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Detectors {
     settings: FlagSettings,
-    alarms: [Alarm; 6],
+    alarms: [Alarm; 7],
     active: FlagSet,
     // Outlier run (robust update): sign of the current run of outliers, its length, and the sum of its z clipped
     // at the spike limit, fed to the CUSUM if the run turns out to be a level shift.
@@ -750,7 +762,7 @@ impl Detectors {
     pub fn new(settings: FlagSettings) -> Self {
         Detectors {
             settings,
-            alarms: [Alarm::IDLE; 6],
+            alarms: [Alarm::IDLE; 7],
             active: FlagSet::EMPTY,
             run_sign: 0.0,
             run_len: 0,
@@ -830,7 +842,7 @@ impl Detectors {
     /// Takes the result of filtering one sample at time `t` with raw value `value` (a value withheld by
     /// [`Detectors::admit`] was filtered as missing: `step` is then a prediction).
     pub fn observe(&mut self, t: f64, value: Option<f64>, step: &Step) -> FlagUpdate {
-        let mut conditions = [Condition::default(); 6];
+        let mut conditions = [Condition::default(); 7];
         let s = self.settings;
         let value = value.filter(|v| !v.is_nan());
         // Any sample ends staleness.
@@ -909,9 +921,29 @@ impl Detectors {
         self.apply(t, &conditions)
     }
 
+    /// Raises (`on`) or clears the `learning` flag at `t`: the channel's own state, not a test.
+    pub fn set_learning(&mut self, t: f64, on: bool) -> FlagUpdate {
+        let mut update = FlagUpdate {
+            active: self.active,
+            ..FlagUpdate::default()
+        };
+        let k = FlagKind::Learning;
+        if self.active.contains(k) != on {
+            let a = &mut self.alarms[k.index()];
+            a.active = on;
+            a.pending = false;
+            if on {
+                a.since = t;
+            }
+            self.record(k, on, &mut update);
+        }
+        update.active = self.active;
+        update
+    }
+
     /// The channel has had no sample for longer than its limit (the daemon's timer).
     pub fn on_stale(&mut self, t: f64) -> FlagUpdate {
-        let mut conditions = [Condition::default(); 6];
+        let mut conditions = [Condition::default(); 7];
         conditions[FlagKind::Stale.index()].raise = true;
         // Other flags hold their state: no sample, no evidence either way.
         let mut update = FlagUpdate {
@@ -982,7 +1014,7 @@ impl Detectors {
         }
     }
 
-    fn apply(&mut self, t: f64, conditions: &[Condition; 6]) -> FlagUpdate {
+    fn apply(&mut self, t: f64, conditions: &[Condition; 7]) -> FlagUpdate {
         let mut update = FlagUpdate::default();
         for k in FlagKind::ALL {
             let design = self.settings.alarms[k.index()];

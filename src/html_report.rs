@@ -99,13 +99,14 @@ const CHANGE: RGBColor = RGBColor(0x6b, 0x2f, 0x7a);
 const GRID: RGBColor = RGBColor(0xe4, 0xe4, 0xe0);
 const AXIS: RGBColor = RGBColor(0x55, 0x55, 0x55);
 const FLAG_ALPHA: f64 = 0.3;
-const FLAG_COLOURS: [RGBColor; 6] = [
+const FLAG_COLOURS: [RGBColor; 7] = [
     RGBColor(0xd9, 0x6a, 0x1e),
     RGBColor(0xa8, 0x32, 0x5a),
     RGBColor(0x4f, 0x8a, 0x2b),
     RGBColor(0x7a, 0x5c, 0xb8),
     RGBColor(0x1f, 0x8f, 0x96),
     RGBColor(0x8c, 0x6d, 0x3f),
+    RGBColor(0x9a, 0x9a, 0x9a),
 ];
 
 // ---------------------------------------------------------------------------------------------------------------

@@ -208,9 +208,19 @@ impl Learner {
         self.window.push(o);
     }
 
-    /// Whether a re-estimation is due at channel time `now`.
+    /// Whether a re-estimation is due at channel time `now`. A channel still learning fits as soon as its window
+    /// holds `min_samples` usable samples.
     pub fn due(&self, now: f64) -> bool {
         self.window.due(now, &self.settings)
+    }
+
+    /// [`Learner::due`] for a channel that is (`learning`) or is not still learning its first model.
+    pub fn due_for(&self, now: f64, learning: bool) -> bool {
+        if learning {
+            self.window.usable() >= self.settings.min_samples.max(estimate::MIN_OBSERVATIONS)
+        } else {
+            self.due(now)
+        }
     }
 
     /// Starts a re-estimation at `now`: the window's contents to fit.
@@ -219,16 +229,26 @@ impl Learner {
         self.window.snapshot()
     }
 
-    /// Observes `o`; when a re-estimation is due, runs it now and applies an accepted change to `channel`.
+    /// Observes `o`; when a re-estimation (or a learning channel's first fit) is due, runs it now and applies an
+    /// accepted change to `channel`.
     pub fn run_inline(&mut self, channel: &mut Channel, o: &Outcome) -> Option<Decision> {
         self.observe(o);
-        if !self.due(o.time) {
+        let learning = channel.learning_target();
+        if !self.due_for(o.time, learning.is_some()) {
             return None;
         }
         let (times, values) = self.start(o.time);
-        let mut d = propose(channel.spec(), &times, &values, &self.settings);
+        let mut d = match learning {
+            Some(kind) => propose_first(channel.spec(), kind, &times, &values),
+            None => propose(channel.spec(), &times, &values, &self.settings),
+        };
         if d.accepted() {
-            if let Err(e) = channel.set_model(&d.new) {
+            let applied = if d.first {
+                channel.learned(&d.new, o.time).map(|_| ())
+            } else {
+                channel.set_model(&d.new)
+            };
+            if let Err(e) = applied {
                 d.refused = Some(Refusal::NotConverged(e.to_string()));
                 d.new = d.old.clone();
             }
@@ -280,6 +300,8 @@ pub struct Decision {
     pub limited: bool,
     /// The unlimited ML estimate, when there was one.
     pub fitted: Option<ModelSpec>,
+    /// A learning channel's first model (no gain or step limits: the stand-in is no reference).
+    pub first: bool,
     /// Window first and last time, samples and usable samples.
     pub from: f64,
     pub to: f64,
@@ -357,6 +379,7 @@ pub fn propose(
         gain: f64::NAN,
         limited: false,
         fitted: None,
+        first: false,
         from: times.first().copied().unwrap_or(f64::NAN),
         to: times.last().copied().unwrap_or(f64::NAN),
         samples: values.len(),
@@ -402,6 +425,13 @@ pub fn propose(
 
 /// An accepted change in words, for logs and reports: `obs_var 0.5 -> 1 (limited), +12.3 nats`.
 pub fn describe_change(d: &Decision) -> String {
+    if d.first {
+        return format!(
+            "learnt {}: {}",
+            d.new.kind(),
+            crate::config::model_line(&d.new)
+        );
+    }
     let mut old = d.old.params.clone();
     let mut new = d.new.params.clone();
     let olds: Vec<(&str, f64)> = variances(&mut old)
@@ -426,6 +456,53 @@ pub fn describe_change(d: &Decision) -> String {
     )
 }
 
+/// A learning channel's first model: a cold fit of `kind` on the window (exactly what `gaugewise fit` runs),
+/// taken if it converged. `provisional` is the stand-in the channel runs, reported as the old parameters.
+pub fn propose_first(
+    provisional: &ModelSpec,
+    kind: crate::model::ModelKind,
+    times: &[f64],
+    values: &[f64],
+) -> Decision {
+    let mut d = Decision {
+        old: provisional.clone(),
+        new: provisional.clone(),
+        refused: None,
+        gain: f64::NAN,
+        limited: false,
+        fitted: None,
+        first: true,
+        from: times.first().copied().unwrap_or(f64::NAN),
+        to: times.last().copied().unwrap_or(f64::NAN),
+        samples: values.len(),
+        used: values.iter().filter(|v| !v.is_nan()).count(),
+    };
+    let data = Data {
+        times,
+        values,
+        interval: provisional.interval,
+    };
+    match estimate::fit(&data, kind, None) {
+        Ok(fit) => match fit.spec.filter(|_| fit.converged) {
+            Some(spec) => {
+                let ll =
+                    |s: &ModelSpec| crate::filter::loglik(s, times, values).unwrap_or(f64::NAN);
+                d.gain = ll(&spec) - ll(provisional);
+                d.fitted = Some(spec.clone());
+                d.new = spec;
+            }
+            None => {
+                d.refused = Some(Refusal::NotConverged(
+                    fit.failure
+                        .unwrap_or_else(|| "no start converged".to_string()),
+                ))
+            }
+        },
+        Err(e) => d.refused = Some(Refusal::NotConverged(e.to_string())),
+    }
+    d
+}
+
 /// The retained parameter-change message of the daemon (and the record `replay` keeps).
 #[derive(Debug, Serialize)]
 pub struct ChangeRecord<'a> {
@@ -436,6 +513,8 @@ pub struct ChangeRecord<'a> {
     pub new: &'a ModelParams,
     pub gain: f64,
     pub limited: bool,
+    /// The channel's first model, learnt from its data (it ran a stand-in before).
+    pub first: bool,
     pub window: WindowRecord,
 }
 
@@ -457,6 +536,7 @@ impl Decision {
             new: &self.new.params,
             gain: self.gain,
             limited: self.limited,
+            first: self.first,
             window: WindowRecord {
                 from: self.from,
                 to: self.to,

@@ -201,8 +201,10 @@ impl Iterator for MergeByTime<'_> {
 pub struct Replay<'a> {
     series: &'a [Series],
     channels: Vec<Channel>,
-    /// Per series, its re-estimation schedule when `[reestimate]` turns it on.
+    /// Per series, its re-estimation schedule when `[reestimate]` turns it on (or while it learns).
     learners: Vec<Option<Learner>>,
+    /// Per series: re-estimation is off, so the learner goes once a learning channel has its first model.
+    learn_off: Vec<bool>,
     order: MergeByTime<'a>,
     summary: Summary,
 }
@@ -217,18 +219,34 @@ impl<'a> Replay<'a> {
             if series[..i].iter().any(|o| o.name == s.name) {
                 return Err(ReplayError::DuplicateChannel(s.name.clone()));
             }
-            let channel = Channel::with_flags(config.model_for(&s.name), config.flags_for(&s.name))
-                .map_err(|e| ReplayError::Model {
-                    channel: s.name.clone(),
-                    source: e,
-                })?;
+            let model = config.model_for(&s.name);
+            let flags = config.flags_for(&s.name);
+            let learning = config.learning_for(&s.name);
+            let channel = match learning {
+                Some(kind) => Channel::learning(kind, model.interval, flags),
+                None => Channel::with_flags(model, flags),
+            }
+            .map_err(|e| ReplayError::Model {
+                channel: s.name.clone(),
+                source: e,
+            })?;
             channels.push(channel);
-            learners.push(config.learn_for(&s.name).copied().map(Learner::new));
+            // A channel that learns its parameters needs the window for its first fit even with [reestimate] off.
+            let settings = config
+                .learn_for(&s.name)
+                .copied()
+                .or_else(|| learning.map(|_| crate::reestimate::LearnSettings::default()));
+            learners.push(settings.map(Learner::new));
         }
+        let learn_off = series
+            .iter()
+            .map(|s| config.learn_for(&s.name).is_none())
+            .collect();
         Ok(Self {
             series,
             channels,
             learners,
+            learn_off,
             order: MergeByTime::new(series),
             summary: Summary {
                 channels: series.len(),
@@ -254,7 +272,8 @@ impl<'a> Iterator for Replay<'a> {
     fn next(&mut self) -> Option<Row<'a>> {
         let (i, k) = self.order.next()?;
         let s = &self.series[i];
-        let outcome = self.channels[i].on_sample(s.times[k], Some(s.values[k]));
+        let mut outcome = self.channels[i].on_sample(s.times[k], Some(s.values[k]));
+        let was_learning = self.channels[i].learning_target().is_some();
         self.summary.count(outcome.status);
         self.summary.flags_raised += outcome.flags.raised.len();
         // The daemon's schedule, run inline: the fit happens at the sample that makes it due, and an accepted
@@ -270,6 +289,14 @@ impl<'a> Iterator for Replay<'a> {
                 }
                 Arc::new(d)
             });
+        if was_learning && self.channels[i].learning_target().is_none() {
+            // The first fit ended learning: the flag cleared with this sample.
+            outcome.flags.active.remove(FlagKind::Learning);
+            outcome.flags.cleared.insert(FlagKind::Learning);
+            if self.learn_off[i] {
+                self.learners[i] = None;
+            }
+        }
         Some(Row {
             channel: &s.name,
             outcome,
@@ -704,6 +731,71 @@ mod tests {
             "{changes:?}"
         );
         assert!(changes[0].1.contains("(limited)"), "{changes:?}");
+    }
+
+    /// A table with no parameters: the channel runs a flagged stand-in, fits its model once `min_samples` usable
+    /// samples are in, clears the flag, and from then on runs exactly what `gaugewise fit` finds on that window.
+    #[test]
+    fn a_channel_without_parameters_learns_them() {
+        let text = "[channels.default]\nmodel = \"lag\"\ninterval = 10.0\n";
+        let cfg = Config::from_str(text, "l.toml").unwrap().channels;
+        assert_eq!(
+            cfg.learning_for("TT-101"),
+            Some(crate::model::ModelKind::Lag)
+        );
+        let (s, _) = crate::history::read_path(
+            std::path::Path::new(concat!(
+                env!("CARGO_MANIFEST_DIR"),
+                "/config/examples/vessel_temperature.csv"
+            )),
+            None,
+            None,
+        )
+        .unwrap();
+        let mut replay = Replay::new(&cfg, &s).unwrap();
+        let mut first = None;
+        let mut learning_rows = 0;
+        for (k, row) in replay.by_ref().enumerate() {
+            if row.outcome.flags.active.contains(FlagKind::Learning) {
+                learning_rows += 1;
+                assert!(row.outcome.std().is_finite() || k == 0, "{row:?}");
+                assert_eq!(
+                    row.outcome.flags.active.len(),
+                    1,
+                    "only the learning flag: {row:?}"
+                );
+            }
+            if let Some(d) = row.reestimated {
+                assert!(row.outcome.flags.cleared.contains(FlagKind::Learning));
+                first = Some((k, d));
+                break;
+            }
+        }
+        let (k, d) = first.expect("a first fit");
+        assert!(d.first && d.accepted(), "{d:?}");
+        assert_eq!(
+            learning_rows, k,
+            "flagged on every row before the one that ended learning"
+        );
+        assert_eq!(d.new.kind(), crate::model::ModelKind::Lag);
+        assert_eq!(replay.channel(0).unwrap().spec(), &d.new);
+        // The same window through `gaugewise fit`'s estimator, cold: the same model.
+        let (times, values): (Vec<f64>, Vec<f64>) = s[0].times[..=k]
+            .iter()
+            .zip(&s[0].values[..=k])
+            .map(|(t, v)| (*t, *v))
+            .unzip();
+        let data = crate::estimate::Data {
+            times: &times,
+            values: &values,
+            interval: 10.0,
+        };
+        let fit = crate::estimate::fit(&data, crate::model::ModelKind::Lag, None).unwrap();
+        assert_eq!(fit.spec.unwrap(), d.new);
+        // Learning ends; with [reestimate] off nothing more happens.
+        assert!(replay.all(
+            |r| r.reestimated.is_none() && !r.outcome.flags.active.contains(FlagKind::Learning)
+        ));
     }
 
     #[test]

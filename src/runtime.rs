@@ -744,6 +744,22 @@ struct ChannelState {
     fitting: bool,
 }
 
+/// A channel as the configuration describes it: with its model, or learning one when its table gave no
+/// parameters.
+fn build_channel(
+    config: &ChannelConfig,
+    name: &str,
+) -> Result<Channel, crate::channel::ChannelError> {
+    match config.learning_for(name) {
+        Some(kind) => Channel::learning(
+            kind,
+            config.model_for(name).interval,
+            config.flags_for(name),
+        ),
+        None => Channel::with_flags(config.model_for(name), config.flags_for(name)),
+    }
+}
+
 /// A finished background re-estimation, back at its worker. `decision` is None if the fit task died.
 struct FitDone {
     index: usize,
@@ -897,7 +913,8 @@ impl Worker {
             return;
         };
         learner.observe(outcome);
-        if state.fitting || !learner.due(outcome.time) {
+        let learning = state.channel.learning_target();
+        if state.fitting || !learner.due_for(outcome.time, learning.is_some()) {
             return;
         }
         let (times, values) = learner.start(outcome.time);
@@ -908,8 +925,9 @@ impl Worker {
         let tx = self.fits_tx.clone();
         tokio::spawn(async move {
             let decision = match slots.acquire_owned().await {
-                Ok(_permit) => tokio::task::spawn_blocking(move || {
-                    reestimate::propose(&spec, &times, &values, &settings)
+                Ok(_permit) => tokio::task::spawn_blocking(move || match learning {
+                    Some(kind) => reestimate::propose_first(&spec, kind, &times, &values),
+                    None => reestimate::propose(&spec, &times, &values, &settings),
                 })
                 .await
                 .ok(),
@@ -944,17 +962,33 @@ impl Worker {
             debug!(channel = %state.name, reason = why.reason(), "re-estimation refused: {why}");
             return;
         }
-        if state.channel.spec() != &d.old {
+        // A learning channel resizes its stand-in as data come, so only a re-estimation checks the old model.
+        if !d.first && state.channel.spec() != &d.old {
             debug!(channel = %state.name, "re-estimation dropped: the channel's model changed while it ran");
             return;
         }
-        if let Err(e) = state.channel.set_model(&d.new) {
-            Counters::bump(&counters.reestimate_failed);
-            error!(channel = %state.name, "re-estimated parameters unusable ({e}); the channel keeps its own");
-            return;
-        }
-        Counters::bump(&counters.reestimate_accepted);
         let time = state.channel.last_time().unwrap_or(d.to);
+        let applied = if d.first {
+            if state.channel.learning_target().is_none() {
+                return;
+            }
+            state.channel.learned(&d.new, time).map(Some)
+        } else {
+            state.channel.set_model(&d.new).map(|_| None)
+        };
+        let cleared = match applied {
+            Ok(c) => c,
+            Err(e) => {
+                Counters::bump(&counters.reestimate_failed);
+                error!(channel = %state.name, "re-estimated parameters unusable ({e}); the channel keeps its own");
+                return;
+            }
+        };
+        Counters::bump(&counters.reestimate_accepted);
+        if d.first && self.config.learn_for(&state.name).is_none() {
+            // Learnt, and re-estimation is off for it: the window is no longer needed.
+            state.learner = None;
+        }
         info!(
             channel = %state.name,
             "parameters re-estimated: {}",
@@ -979,6 +1013,9 @@ impl Worker {
         {
             self.publish_dropped();
         }
+        if let Some(update) = cleared.filter(|u| u.changed()) {
+            self.publish_flag_update(done.index, time, &update);
+        }
     }
 
     /// Takes on a reloaded channel configuration: a channel whose model and flag design are unchanged keeps its
@@ -998,10 +1035,7 @@ impl Worker {
                 continue;
             };
             let name = &self.channels[i].name;
-            let fresh = match Channel::with_flags(
-                self.config.model_for(name),
-                self.config.flags_for(name),
-            ) {
+            let fresh = match build_channel(&self.config, name) {
                 Ok(c) => c,
                 Err(e) => {
                     // Validation builds every configured model, so this is a bug; keep the channel running.
@@ -1052,20 +1086,20 @@ impl Worker {
             });
             return None;
         }
-        let channel =
-            match Channel::with_flags(self.config.model_for(name), self.config.flags_for(name)) {
-                Ok(c) => c,
-                Err(e) => {
-                    // Config validation builds every model it names, so this means a bug; refuse, do not panic.
-                    self.shared.channels.fetch_sub(1, Ordering::Relaxed);
-                    self.shared.refuse(&Refusal {
-                        reason: "bad_model",
-                        key: name.to_string(),
-                        detail: format!("its configured model is unusable: {e}"),
-                    });
-                    return None;
-                }
-            };
+        let learning = self.config.learning_for(name);
+        let channel = match build_channel(&self.config, name) {
+            Ok(c) => c,
+            Err(e) => {
+                // Config validation builds every model it names, so this means a bug; refuse, do not panic.
+                self.shared.channels.fetch_sub(1, Ordering::Relaxed);
+                self.shared.refuse(&Refusal {
+                    reason: "bad_model",
+                    key: name.to_string(),
+                    detail: format!("its configured model is unusable: {e}"),
+                });
+                return None;
+            }
+        };
         let mut topic = String::new();
         if let Err(e) = self.output.render(name, &mut topic) {
             self.shared.channels.fetch_sub(1, Ordering::Relaxed);
@@ -1094,10 +1128,14 @@ impl Worker {
             flags_topic,
             last_received: f64::NAN,
             stale: false,
+            // A channel that learns its parameters needs the window for its first fit even with
+            // [reestimate] off.
             learner: self
                 .config
                 .learn_for(name)
-                .map(|s| Box::new(Learner::new(*s))),
+                .copied()
+                .or_else(|| learning.map(|_| reestimate::LearnSettings::default()))
+                .map(|s| Box::new(Learner::new(s))),
             fitting: false,
         });
         let stale_index = self.stale.add();

@@ -172,3 +172,102 @@ fn the_daemon_learns_its_noise_and_publishes_the_change() {
         run_against(&broker);
     }
 }
+
+/// A channel whose table gives no parameters: outputs carry the `learning` flag until the first fit, the first
+/// model is published retained (first = true), the flag clears on the flags topic, and the model equals replay's.
+#[test]
+fn a_channel_without_parameters_learns_them_live() {
+    const LEARN: &str = r#"
+[channels.default]
+model = "level"
+interval = 1.0
+obs_var = 0.5
+level_var = 0.01
+
+[[channels.override]]
+match = "LT-*"
+model = "level"
+interval = 1.0
+"#;
+    let broker = TestBroker::embedded();
+    let client_id = format!("gaugewise-test-learning-{}", std::process::id());
+    let config = config_text(broker.port(), &client_id)
+        .replace(MODELS, LEARN)
+        .replace(
+            "qos = 1\n\n[status]",
+            "flags_topic = \"brackenfield/flags/{channel}\"\nqos = 1\n\n[status]",
+        );
+    let watcher = TestClient::connect(broker.port());
+    let outputs = watcher.subscribe("brackenfield/clean/#", QoS::AtLeastOnce);
+    let params = watcher.subscribe("brackenfield/params/#", QoS::AtLeastOnce);
+    let flags = watcher.subscribe("brackenfield/flags/#", QoS::AtLeastOnce);
+    let status = watcher.subscribe(
+        &format!("brackenfield/status/{client_id}"),
+        QoS::AtLeastOnce,
+    );
+    let mut daemon = Daemon::start(&config);
+    assert!(
+        wait_status(&status, "online", Duration::from_secs(10)).is_some(),
+        "log:\n{}",
+        daemon.log()
+    );
+    let t0 = (epoch_now() - 100_000.0).floor();
+    let mut noise = Noise::new(9);
+    let mut level = 3.0;
+    let n = 260;
+    let (times, values): (Vec<f64>, Vec<f64>) = (0..n)
+        .map(|k| {
+            level += 0.02 * noise.normal();
+            (t0 + k as f64, level + 0.1 * noise.normal())
+        })
+        .unzip();
+    let publisher = TestClient::connect(broker.port());
+    for (t, v) in times.iter().zip(&values) {
+        publisher.publish(
+            "brackenfield/raw/LT-301",
+            format!(r#"{{"t":{t:?},"v":{v:?}}}"#),
+            QoS::AtLeastOnce,
+            false,
+        );
+        // Pace the samples a little so the first fit lands while samples still arrive.
+        std::thread::sleep(Duration::from_micros(500));
+    }
+    assert!(publisher.flush(WAIT));
+    let got = recv_n(&outputs, n, Duration::from_secs(20));
+    assert_eq!(got.len(), n, "log:\n{}", daemon.log());
+    assert_eq!(got[0].json()["flags"][0], "learning", "{}", got[0].text());
+    assert!(
+        got[n - 1].json()["flags"].as_array().unwrap().is_empty(),
+        "{}",
+        got[n - 1].text()
+    );
+
+    let change = recv_n(&params, 1, Duration::from_secs(20));
+    assert_eq!(change.len(), 1, "log:\n{}", daemon.log());
+    let first = change[0].json();
+    assert_eq!(first["first"], true, "{first}");
+    let cfg = Config::from_str(LEARN, "models").unwrap().channels;
+    let series = vec![Series {
+        name: "LT-301".into(),
+        times,
+        values,
+    }];
+    let decision = Replay::new(&cfg, &series)
+        .unwrap()
+        .find_map(|row| row.reestimated)
+        .expect("replay learns too");
+    match decision.new.params {
+        gaugewise::model::ModelParams::Level { obs_var, level_var } => {
+            assert_eq!(first["new"]["obs_var"].as_f64().unwrap(), obs_var);
+            assert_eq!(first["new"]["level_var"].as_f64().unwrap(), level_var);
+        }
+        _ => unreachable!(),
+    }
+    // The flags topic saw learning raised, then cleared.
+    let f = recv_n(&flags, 2, Duration::from_secs(10));
+    assert_eq!(f.len(), 2, "log:\n{}", daemon.log());
+    assert_eq!(f[0].json()["raised"][0], "learning");
+    assert_eq!(f[1].json()["cleared"][0], "learning");
+    assert!(send_signal(daemon.child.id(), "TERM"));
+    assert!(daemon.wait(Duration::from_secs(5)).is_some());
+}

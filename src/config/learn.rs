@@ -192,6 +192,32 @@ mod tests {
     }
 
     #[test]
+    fn a_table_without_parameters_learns_and_a_partial_one_is_an_error() {
+        let c = Config::from_str(
+            "[channels.default]\nmodel = \"trend\"\ninterval = 5.0\n\
+             [[channels.override]]\nmatch = \"TT-*\"\nmodel = \"lag\"\ninterval = 10.0\nmean = 70.0\n\
+             tau = 300.0\nstate_var = 0.1\nobs_var = 0.04\n",
+            "r.toml",
+        )
+        .unwrap();
+        assert_eq!(
+            c.channels.learning_for("LT-301"),
+            Some(crate::model::ModelKind::Trend)
+        );
+        assert_eq!(c.channels.learning_for("TT-101"), None);
+        let m = Config::from_str(
+            "[channels.default]\nmodel = \"level\"\ninterval = 5.0\nobs_var = 1.0\n",
+            "r.toml",
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            m.starts_with("r.toml: channels.default.level_var: missing"),
+            "{m}"
+        );
+    }
+
+    #[test]
     fn mistakes_name_the_key() {
         for (text, expected) in [
             (

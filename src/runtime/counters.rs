@@ -51,7 +51,7 @@ pub struct Counters {
     /// Samples whose value did not update the estimate (spike, out of range, stuck).
     pub withheld: AtomicU64,
     /// Flags raised, by kind in `detect::FlagKind::ALL` order.
-    pub flags_raised: [AtomicU64; 6],
+    pub flags_raised: [AtomicU64; 7],
     /// Re-estimations whose parameters were taken.
     pub reestimate_accepted: AtomicU64,
     /// Re-estimations refused: the fit did not converge; the gain was too small; the task failed.
@@ -75,7 +75,7 @@ pub struct CounterSnapshot {
     pub reconnects: u64,
     pub withheld: u64,
     /// Flags raised, by kind in `detect::FlagKind::ALL` order.
-    pub flags_raised: [u64; 6],
+    pub flags_raised: [u64; 7],
     pub reestimate_accepted: u64,
     /// Refused re-estimations, all reasons together.
     pub reestimate_refused: u64,
