@@ -13,13 +13,17 @@
 //!   output of the daemon (whole process) against the relay (its one thread);
 //! - b) latency at a fixed rate (20,000 samples/s over 1,000 channels for 10 s): p50/p99/max from the publish call
 //!   to the receipt of the output (HDR histogram), and samples lost (sent minus received);
-//! - c) memory: a fresh daemon gets one sample on each of 100,000 channels; its resident memory afterwards.
+//! - c) memory: a fresh daemon gets one sample on each of 100,000 channels; its resident memory afterwards;
+//! - d) re-estimation (issue 5): the latency of case b at 20,000 samples/s over 1,000 channels, measured on a daemon
+//!   with re-estimation off, then on a daemon whose 1,000 channels refit their 2,000-sample windows every 60 s, then
+//!   off again; p99 on / off. Not in the default set (it takes about five minutes: windows take 100 s to fill).
 //!
 //! The sample's time field carries its send time, read from one monotonic clock shifted to the epoch; the daemon
 //! copies it into its output's `time`, the relay leaves the payload as it is, so the receiver reads the latency
 //! off every message with no table of sent messages. The publisher and the receiver are minimal MQTT clients of
 //! the bench's own (`raw`), cheap enough to leave the CPU to what is measured. The figures are printed with the
-//! targets of issue 3; the bench never fails on a miss (timings on a shared machine are not a pass/fail matter).
+//! targets of issues 3 and 5; the bench never fails on a miss (timings on a shared machine are not a pass/fail
+//! matter).
 
 #[allow(dead_code)]
 #[path = "../tests/common/broker.rs"]
@@ -29,6 +33,7 @@ use broker::send_signal;
 use gaugewise::broker::{null_relay, EmbeddedBroker, NullRelay, MAX_PACKET_SIZE};
 use hdrhistogram::Histogram;
 use rumqttc::QoS;
+use std::cell::RefCell;
 use std::fmt::Write as _;
 use std::io::{self, Read, Write};
 use std::net::TcpStream;
@@ -42,6 +47,10 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 /// Inputs of the daemon: `gwbench/in/<channel>`; its outputs: `gwbench/out/<channel>`.
 const DAEMON_IN: &str = "gwbench/in";
+/// Inputs of case d's two daemons, one without re-estimation and one with: both stay connected, and a daemon must
+/// not filter the other's samples.
+const OFF_IN: &str = "gwbench/in-off";
+const ON_IN: &str = "gwbench/in-on";
 const DAEMON_OUT_FILTER: &str = "gwbench/out/#";
 /// Inputs of the null relay, and the prefix it republishes under (`gwbench/relay/gwbench/rin/<channel>`).
 const RELAY_IN: &str = "gwbench/rin";
@@ -81,7 +90,7 @@ fn main() {
 
 /// The sizes of the run. Environment variables, with their defaults (about a minute on a 2-core machine):
 struct Params {
-    /// GWBENCH_CASES=abc: which cases to run.
+    /// GWBENCH_CASES=abc: which cases to run (d, re-estimation, only when asked for).
     cases: String,
     /// GWBENCH_BROKER=auto|mosquitto|embedded: auto takes Mosquitto when installed, else the embedded broker.
     broker: String,
@@ -109,6 +118,15 @@ struct Params {
     broker_nodelay: bool,
     /// GWBENCH_CLIENT_NODELAY=1: TCP_NODELAY on the bench's own publisher and receiver.
     client_nodelay: bool,
+    /// GWBENCH_REEST_WINDOW=2000: samples in each channel's re-estimation window in case d.
+    reest_window: usize,
+    /// GWBENCH_REEST_EVERY_S=60: seconds between two re-estimations of one channel in case d.
+    reest_every: f64,
+    /// GWBENCH_REEST_ON_S=120: measured seconds with re-estimation on, once the windows are full. A whole number of
+    /// periods (`reest_every`), so the measurement holds each channel's fits as often as a day of running would.
+    reest_on_secs: Duration,
+    /// GWBENCH_REEST_OFF_S=30: measured seconds of each of the two runs with re-estimation off (before and after).
+    reest_off_secs: Duration,
 }
 
 impl Params {
@@ -132,7 +150,20 @@ impl Params {
             mem_rate: env_or("GWBENCH_MEM_RATE", 20_000.0)?,
             broker_nodelay: env_or("GWBENCH_BROKER_NODELAY", 1u8)? != 0,
             client_nodelay: env_or("GWBENCH_CLIENT_NODELAY", 1u8)? != 0,
+            reest_window: env_or("GWBENCH_REEST_WINDOW", 2000)?,
+            reest_every: env_or("GWBENCH_REEST_EVERY_S", 60.0)?,
+            reest_on_secs: Duration::from_secs_f64(env_or("GWBENCH_REEST_ON_S", 120.0)?),
+            reest_off_secs: Duration::from_secs_f64(env_or("GWBENCH_REEST_OFF_S", 30.0)?),
         };
+        if !(20..=1_000_000).contains(&p.reest_window)
+            || !p.reest_every.is_finite()
+            || p.reest_every <= 0.0
+        {
+            return Err(
+                "GWBENCH_REEST_WINDOW must be 20..1000000 and GWBENCH_REEST_EVERY_S positive"
+                    .into(),
+            );
+        }
         if p.channels == 0 || p.mem_channels == 0 || p.rounds == 0 || p.window == 0 {
             return Err("channel counts, rounds and window must be at least 1".into());
         }
@@ -256,8 +287,11 @@ fn run(p: &Params) -> Result<(), String> {
     if p.case('c') {
         case_memory(&ctx, p, &mut verdicts)?;
     }
+    if p.case('d') {
+        case_reestimate(&ctx, p, &mut verdicts)?;
+    }
 
-    println!("Targets (issue 3; informational: the bench never fails on a miss)");
+    println!("Targets (issues 3 and 5; informational: the bench never fails on a miss)");
     println!(
         "  {:<58} {:>12} {:>12}  result",
         "target", "measured", "target"
@@ -483,6 +517,8 @@ fn case_throughput(
                     warmup: p.warmup,
                     measure: Some(p.max_secs),
                     count: None,
+                    signal: None,
+                    at_measure: None,
                 },
                 subject,
             );
@@ -578,6 +614,8 @@ fn case_latency(
                 warmup: p.warmup,
                 measure: Some(p.rate_secs),
                 count: None,
+                signal: None,
+                at_measure: None,
             },
             subject,
         );
@@ -659,6 +697,8 @@ fn case_memory(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result<(),
             warmup: Duration::ZERO,
             measure: None,
             count: Some(p.mem_channels as u64),
+            signal: None,
+            at_measure: None,
         },
         Subject::Daemon(daemon.pid()),
     );
@@ -689,6 +729,644 @@ fn case_memory(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result<(),
         measured: format!("{rss:.1} MB"),
         target: "< 200 MB".into(),
         pass: rss < 200.0 && after.rss_kb > 0,
+    });
+    Ok(())
+}
+
+/// The configured noise variances of every channel the bench's daemons run (per nominal interval).
+const DAEMON_OBS_VAR: f64 = 0.25;
+const DAEMON_LEVEL_VAR: f64 = 0.01;
+
+/// Case d's signal, per channel: a random-walk level plus white noise. The true variances differ from the
+/// configured ones by channel: observation noise 0.5, 1, 2 or 4 times `DAEMON_OBS_VAR`, level steps 1 or 0.25 times
+/// `DAEMON_LEVEL_VAR`. One channel in eight matches its configuration, so its fits gain nothing and are refused;
+/// the others have something to learn, in steps of at most `max_factor`, so fits are accepted too. The fits then
+/// cost what fits on live data cost, not what a fit that stops at its starting point costs.
+struct Walk {
+    noise: gaugewise::simulate::Noise,
+    levels: Vec<f64>,
+}
+
+const WALK_OBS_FACTORS: [f64; 4] = [0.5, 1.0, 2.0, 4.0];
+const WALK_LEVEL_FACTORS: [f64; 2] = [1.0, 0.25];
+const WALK_SEED: u64 = 0x5eed_b0c5;
+
+impl Walk {
+    fn new(channels: usize, seed: u64) -> Walk {
+        Walk {
+            noise: gaugewise::simulate::Noise::new(seed),
+            levels: (0..channels).map(|i| 40.0 + (i % 20) as f64).collect(),
+        }
+    }
+
+    /// The next value of channel `index`: one step of its level, plus noise.
+    fn next(&mut self, index: usize) -> f64 {
+        let obs_sd = (DAEMON_OBS_VAR * WALK_OBS_FACTORS[index % 4]).sqrt();
+        let level_sd = (DAEMON_LEVEL_VAR * WALK_LEVEL_FACTORS[(index / 4) % 2]).sqrt();
+        let step = level_sd * self.noise.normal();
+        let noise = obs_sd * self.noise.normal();
+        match self.levels.get_mut(index) {
+            Some(level) => {
+                *level += step;
+                *level + noise
+            }
+            None => 50.0 + noise,
+        }
+    }
+}
+
+/// What the daemon's metrics endpoint said at one moment: the re-estimation counters and its own processing-latency
+/// histogram (receipt of a message to its output handed to the MQTT client).
+#[derive(Default, Clone)]
+struct Scrape {
+    accepted: u64,
+    refused: u64,
+    /// (upper bound in s, cumulative count), in the endpoint's order; +Inf last.
+    buckets: Vec<(f64, u64)>,
+}
+
+impl Scrape {
+    /// What happened between `before` and `self`.
+    fn since(&self, before: &Scrape) -> Scrape {
+        Scrape {
+            accepted: self.accepted.saturating_sub(before.accepted),
+            refused: self.refused.saturating_sub(before.refused),
+            buckets: self
+                .buckets
+                .iter()
+                .zip(&before.buckets)
+                .map(|(&(le, n), &(_, m))| (le, n.saturating_sub(m)))
+                .collect(),
+        }
+    }
+
+    fn total(&self) -> u64 {
+        self.buckets.last().map_or(0, |&(_, n)| n)
+    }
+
+    /// Share of samples over `limit_s` (a bucket bound).
+    fn share_over(&self, limit_s: f64) -> f64 {
+        let within = self
+            .buckets
+            .iter()
+            .find(|(le, _)| (*le - limit_s).abs() < 1e-12)
+            .map_or(0, |&(_, n)| n);
+        self.total().saturating_sub(within) as f64 / self.total().max(1) as f64
+    }
+
+    /// The smallest bucket bound that holds quantile `q` (infinite when only +Inf does).
+    fn quantile_bound(&self, q: f64) -> f64 {
+        let need = (q * self.total() as f64).ceil() as u64;
+        self.buckets
+            .iter()
+            .find(|&&(_, n)| n >= need)
+            .map_or(f64::INFINITY, |&(le, _)| le)
+    }
+}
+
+/// GET /metrics from a daemon's endpoint on the loopback port; None when it does not answer within 2 s.
+fn scrape(port: u16) -> Option<Scrape> {
+    let addr = std::net::SocketAddr::from(([127, 0, 0, 1], port));
+    let mut stream = TcpStream::connect_timeout(&addr, Duration::from_secs(2)).ok()?;
+    stream.set_read_timeout(Some(Duration::from_secs(2))).ok()?;
+    stream
+        .write_all(b"GET /metrics HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n")
+        .ok()?;
+    let mut text = String::new();
+    stream.read_to_string(&mut text).ok()?;
+    let mut s = Scrape::default();
+    let value = |line: &str| line.rsplit(' ').next()?.trim().parse::<u64>().ok();
+    for line in text.lines() {
+        if let Some(rest) = line.strip_prefix("gaugewise_reestimations_total{result=\"") {
+            if rest.starts_with("accepted\"") {
+                s.accepted = value(line)?;
+            } else if rest.starts_with("refused\"") {
+                s.refused = value(line)?;
+            }
+        } else if let Some(rest) =
+            line.strip_prefix("gaugewise_processing_latency_seconds_bucket{le=\"")
+        {
+            let bound = rest.split('"').next()?;
+            let le = if bound == "+Inf" {
+                f64::INFINITY
+            } else {
+                bound.parse().ok()?
+            };
+            s.buckets.push((le, value(line)?));
+        }
+    }
+    (!s.buckets.is_empty()).then_some(s)
+}
+
+/// How often `FitWatch` reads the daemon's counters.
+const FIT_POLL: Duration = Duration::from_millis(200);
+
+/// Reads a daemon's re-estimation count every `FIT_POLL` on a thread of its own, to see when the fits ran. It runs
+/// in every segment of case d, on and off alike, so its own small cost (a few HTTP requests per second) is the same
+/// in both.
+struct FitWatch {
+    stop: Arc<AtomicBool>,
+    thread: Option<JoinHandle<Vec<(f64, u64)>>>,
+}
+
+impl FitWatch {
+    fn start(port: u16, clock: Clock) -> FitWatch {
+        let stop = Arc::new(AtomicBool::new(false));
+        let flag = stop.clone();
+        let thread = thread::Builder::new()
+            .name("gwbench-fitwatch".into())
+            .spawn(move || {
+                let mut polls = Vec::new();
+                while !flag.load(Ordering::Relaxed) {
+                    if let Some(s) = scrape(port) {
+                        polls.push((clock.now(), s.accepted + s.refused));
+                    }
+                    thread::sleep(FIT_POLL);
+                }
+                polls
+            })
+            .ok();
+        FitWatch { stop, thread }
+    }
+
+    /// Stops; the stretches in which re-estimations finished: (from, to, count), clock times, accurate to a poll.
+    fn finish(mut self) -> Vec<(f64, f64, u64)> {
+        self.stop.store(true, Ordering::Relaxed);
+        let polls = self
+            .thread
+            .take()
+            .and_then(|t| t.join().ok())
+            .unwrap_or_default();
+        let mut bursts: Vec<(f64, f64, u64)> = Vec::new();
+        for pair in polls.windows(2) {
+            let ((t0, n0), (t1, n1)) = (pair[0], pair[1]);
+            if n1 <= n0 {
+                continue;
+            }
+            match bursts.last_mut() {
+                // Polls with fits one after the other are one burst.
+                Some(last) if last.1 >= t0 - 1e-9 => {
+                    last.1 = t1;
+                    last.2 += n1 - n0;
+                }
+                _ => bursts.push((t0, t1, n1 - n0)),
+            }
+        }
+        bursts
+    }
+}
+
+impl Drop for FitWatch {
+    fn drop(&mut self) {
+        self.stop.store(true, Ordering::Relaxed);
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
+    }
+}
+
+/// One measured stretch of case d.
+struct Segment {
+    name: &'static str,
+    r: DriveResult,
+    /// The daemon's counters over the measured window (None if the endpoint did not answer).
+    metrics: Option<Scrape>,
+    /// When re-estimations finished, from `FitWatch` (clock times).
+    bursts: Vec<(f64, f64, u64)>,
+}
+
+/// Drives `daemon` at case b's rate with `walk`'s values: `warmup` not measured, then `secs` measured.
+#[allow(clippy::too_many_arguments)]
+fn reest_segment(
+    ctx: &Ctx,
+    p: &Params,
+    name: &'static str,
+    daemon: &Daemon,
+    input: &str,
+    metrics_port: u16,
+    walk: &RefCell<Walk>,
+    warmup: Duration,
+    secs: Duration,
+) -> Segment {
+    let topics = topics(input, p.channels);
+    let before = RefCell::new(None);
+    let at_measure = || *before.borrow_mut() = scrape(metrics_port);
+    let watch = FitWatch::start(metrics_port, ctx.clock);
+    let r = drive(
+        ctx,
+        &Drive {
+            topics: &topics,
+            pace: Pace::Rate(p.rate),
+            qos: QoS::AtMostOnce,
+            warmup,
+            measure: Some(secs),
+            count: None,
+            signal: Some(walk),
+            at_measure: Some(&at_measure),
+        },
+        Subject::Daemon(daemon.pid()),
+    );
+    let metrics = before
+        .into_inner()
+        .zip(scrape(metrics_port))
+        .map(|(b, a)| a.since(&b));
+    let bursts = watch.finish();
+    Segment {
+        name,
+        r,
+        metrics,
+        bursts,
+    }
+}
+
+/// Runs of consecutive 100 ms slots whose worst latency is over `limit_us`: (start s, end s, worst µs).
+fn slow_runs(t: &Tally, limit_us: u64) -> Vec<(f64, f64, u64)> {
+    let mut runs: Vec<(f64, f64, u64)> = Vec::new();
+    let mut in_run = false;
+    for (i, &us) in t.slots.iter().enumerate() {
+        if us <= limit_us {
+            in_run = false;
+            continue;
+        }
+        let (start, end) = (i as f64 * SLOT, (i + 1) as f64 * SLOT);
+        match runs.last_mut() {
+            Some(last) if in_run => {
+                last.1 = end;
+                last.2 = last.2.max(us);
+            }
+            _ => runs.push((start, end, us)),
+        }
+        in_run = true;
+    }
+    runs
+}
+
+/// When the fits of the "on" segment ran, and the latency of the seconds with fits against those without.
+fn report_bursts(on: &Segment, p99_off: f64) {
+    let since = on.r.tally.since;
+    if on.bursts.is_empty() {
+        println!("   on: no re-estimation seen by the poller");
+        return;
+    }
+    let list: Vec<String> = on
+        .bursts
+        .iter()
+        .map(|&(a, b, n)| {
+            format!(
+                "{:+.1}..{:+.1} s: {n} fits, {:.1} ms each",
+                a - since,
+                b - since,
+                (b - a) * 1000.0 / n.max(1) as f64
+            )
+        })
+        .collect();
+    println!(
+        "   on: re-estimations finished in (seconds from the start of the measured window, negative while the \
+         windows filled; to {} ms): {}",
+        FIT_POLL.as_millis(),
+        list.join("; ")
+    );
+    let seconds = &on.r.tally.seconds;
+    let mut during: Option<Histogram<u64>> = None;
+    let mut between: Option<Histogram<u64>> = None;
+    let (mut n_during, mut n_between) = (0, 0);
+    for (i, h) in seconds.iter().enumerate() {
+        let (a, b) = (since + i as f64, since + i as f64 + 1.0);
+        let busy = on.bursts.iter().any(|&(x, y, _)| x < b && y > a);
+        let (slot, n) = if busy {
+            (&mut during, &mut n_during)
+        } else {
+            (&mut between, &mut n_between)
+        };
+        *n += 1;
+        match slot {
+            Some(acc) => {
+                let _ = acc.add(h);
+            }
+            None => *slot = Some(h.clone()),
+        }
+    }
+    for (what, h, n) in [
+        ("seconds with fits", &during, n_during),
+        ("seconds without", &between, n_between),
+    ] {
+        if let Some(h) = h {
+            let ms = |q: f64| h.value_at_quantile(q) as f64 / 1000.0;
+            println!(
+                "   on, {what}: {n} s, {} samples, p50 {:.3} ms, p99 {:.3} ms, p99.9 {:.3} ms, max {:.1} ms \
+                 (p99 / p99 off {:.2})",
+                h.len(),
+                ms(0.5),
+                ms(0.99),
+                ms(0.999),
+                h.max() as f64 / 1000.0,
+                ms(0.99) / p99_off
+            );
+        }
+    }
+    println!("   on, p99 per second (ms), 20 s a row:");
+    for (row, chunk) in seconds.chunks(20).enumerate() {
+        let cells: Vec<String> = chunk
+            .iter()
+            .map(|h| format!("{:.1}", h.value_at_quantile(0.99) as f64 / 1000.0))
+            .collect();
+        println!("     +{:>3} s  {}", row * 20, cells.join(" "));
+    }
+}
+
+/// A log line without the terminal colour codes `tracing` may put in.
+fn plain(line: &str) -> String {
+    let mut out = String::with_capacity(line.len());
+    let mut chars = line.chars();
+    while let Some(c) = chars.next() {
+        if c == '\u{1b}' {
+            for d in chars.by_ref() {
+                if d.is_ascii_alphabetic() {
+                    break;
+                }
+            }
+        } else {
+            out.push(c);
+        }
+    }
+    out
+}
+
+fn case_reestimate(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result<(), String> {
+    let per_channel = p.rate / p.channels as f64;
+    let interval = 1.0 / per_channel;
+    // The windows are full after `window` samples of each channel; a little more so that every channel's is.
+    let fill = Duration::from_secs_f64(p.reest_window as f64 / per_channel + 2.0);
+    let periods = p.reest_on_secs.as_secs_f64() / p.reest_every;
+    println!(
+        "d) re-estimation: {:.0} samples/s over {} channels ({per_channel:.1} per channel per s, interval \
+         {interval} s), QoS 0, publish call to output received",
+        p.rate, p.channels
+    );
+    println!(
+        "   on: every channel refits its {}-sample window every {} s of its own time (= wall time: the payload \
+         time is the send time); the windows fill in {:.0} s, not measured, then {:.0} s are measured ({periods:.2} \
+         periods)",
+        p.reest_window,
+        p.reest_every,
+        fill.as_secs_f64(),
+        p.reest_on_secs.as_secs_f64()
+    );
+    if (periods - periods.round()).abs() > 1e-6 {
+        println!(
+            "   note: the measured time is not a whole number of periods, so the fits weigh more or less than \
+             they do in steady running"
+        );
+    }
+    println!(
+        "   off: a daemon with the same configuration but no [reestimate], {:.0} s measured before and {:.0} s \
+         after (+{:.0} s warm-up each)",
+        p.reest_off_secs.as_secs_f64(),
+        p.reest_off_secs.as_secs_f64(),
+        p.warmup.as_secs_f64()
+    );
+    println!(
+        "   signal: per channel a random walk plus noise, observation variance 0.5/1/2/4 x and level variance 1 or \
+         0.25 x the configured {DAEMON_OBS_VAR} / {DAEMON_LEVEL_VAR} per interval"
+    );
+    println!(
+        "   {:<10} {:>7} {:>8} {:>5} {:>7} {:>7} {:>8} {:>7} {:>10} {:>10} {:>9} {SHARES_HEADER}",
+        "case",
+        "sent/s",
+        "sent",
+        "lost",
+        "p50 ms",
+        "p99 ms",
+        "p99.9 ms",
+        "max ms",
+        "CPU µs/out",
+        "switch/out",
+        "fits a/r"
+    );
+    ctx.receiver.batch_reads(false);
+    ctx.receiver.per_second(true);
+    let max_channels = p.channels.max(1000);
+    let off_port = broker::free_port();
+    let off_daemon = Daemon::start_tuned(
+        ctx,
+        QoS::AtMostOnce,
+        max_channels,
+        &Tuning {
+            input: OFF_IN,
+            interval,
+            reestimate: None,
+            metrics_port: Some(off_port),
+        },
+    )?;
+    // One signal per daemon: each sees the same kind of data from its first sample.
+    let off_walk = RefCell::new(Walk::new(p.channels, WALK_SEED));
+    let on_walk = RefCell::new(Walk::new(p.channels, WALK_SEED));
+    let mut segments = Vec::new();
+    let print = |s: &Segment| {
+        let h = &s.r.tally.latency;
+        let ms = |q: f64| h.value_at_quantile(q) as f64 / 1000.0;
+        let w = &s.r.window;
+        let fits = s
+            .metrics
+            .as_ref()
+            .map_or("n/a".into(), |m| format!("{}/{}", m.accepted, m.refused));
+        println!(
+            "   {:<10} {:>7.0} {:>8} {:>5} {:>7.3} {:>7.3} {:>8.3} {:>7.1} {:>10.2} {:>10.2} {:>9} {}",
+            s.name,
+            w.sent as f64 / w.secs,
+            s.r.sent,
+            s.r.lost(),
+            ms(0.5),
+            ms(0.99),
+            ms(0.999),
+            h.max() as f64 / 1000.0,
+            w.cpu_us_per_output(ctx.ticks_per_s),
+            w.switches_per_output(),
+            fits,
+            w.shares(ctx.ticks_per_s),
+        );
+    };
+    let off1 = reest_segment(
+        ctx,
+        p,
+        "off",
+        &off_daemon,
+        OFF_IN,
+        off_port,
+        &off_walk,
+        p.warmup,
+        p.reest_off_secs,
+    );
+    print(&off1);
+    segments.push(off1);
+
+    let on_port = broker::free_port();
+    let on_daemon = Daemon::start_tuned(
+        ctx,
+        QoS::AtMostOnce,
+        max_channels,
+        &Tuning {
+            input: ON_IN,
+            interval,
+            reestimate: Some((p.reest_window, p.reest_every)),
+            metrics_port: Some(on_port),
+        },
+    )?;
+    let on = reest_segment(
+        ctx,
+        p,
+        "on",
+        &on_daemon,
+        ON_IN,
+        on_port,
+        &on_walk,
+        fill,
+        p.reest_on_secs,
+    );
+    print(&on);
+    segments.push(on);
+    // Stopped before the second "off" run, so it idles on nobody's cores.
+    let on_log = on_daemon.stop();
+
+    let off2 = reest_segment(
+        ctx,
+        p,
+        "off again",
+        &off_daemon,
+        OFF_IN,
+        off_port,
+        &off_walk,
+        p.warmup,
+        p.reest_off_secs,
+    );
+    print(&off2);
+    segments.push(off2);
+    off_daemon.stop();
+
+    let [off1, on, off2] = <[Segment; 3]>::try_from(segments).map_err(|_| "three segments")?;
+    let mut off_h = off1.r.tally.latency.clone();
+    off_h
+        .add(&off2.r.tally.latency)
+        .map_err(|e| format!("merging histograms: {e}"))?;
+    let off_ticks = off1.r.window.subject_ticks + off2.r.window.subject_ticks;
+    let off_outputs = off1.r.window.outputs + off2.r.window.outputs;
+    let ms = |h: &Histogram<u64>, q: f64| h.value_at_quantile(q) as f64 / 1000.0;
+    println!(
+        "   {:<10} {:>7} {:>8} {:>5} {:>7.3} {:>7.3} {:>8.3} {:>7.1} {:>10.2}",
+        "off, both",
+        "",
+        "",
+        off1.r.lost() + off2.r.lost(),
+        ms(&off_h, 0.5),
+        ms(&off_h, 0.99),
+        ms(&off_h, 0.999),
+        off_h.max() as f64 / 1000.0,
+        off_ticks as f64 / ctx.ticks_per_s * 1e6 / off_outputs.max(1) as f64,
+    );
+    println!(
+        "   (latency counts the measured seconds only; sent and lost count the warm-up, and for \"on\" the \
+         filling, too)"
+    );
+    println!(
+        "   (fits a/r: re-estimations accepted / refused in the measured seconds, from the daemon's metrics \
+         endpoint)"
+    );
+    println!("{SHARES_NOTE}");
+    for s in [&off1, &on, &off2] {
+        if s.r.tally.not_ok > 0 || s.r.tally.unreadable > 0 {
+            println!(
+                "   {}: {} outputs with a status other than \"ok\" (withheld outliers of the noisier channels), {} \
+                 without a readable time",
+                s.name, s.r.tally.not_ok, s.r.tally.unreadable
+            );
+        }
+    }
+
+    let p99_off = ms(&off_h, 0.99);
+    let p99_on = ms(&on.r.tally.latency, 0.99);
+    let ratio = p99_on / p99_off;
+    let limit_us = (1.5 * p99_off * 1000.0).round() as u64;
+    // Every channel's first sample comes within one round of the channels (1 / per_channel s), so all of them fall
+    // due at once: k * every_s after the start, i.e. k * every_s - fill into the measured window.
+    let bursts: Vec<String> = (1..)
+        .map(|k| k as f64 * p.reest_every - fill.as_secs_f64())
+        .take_while(|&at| at < p.reest_on_secs.as_secs_f64())
+        .filter(|&at| at >= 0.0)
+        .map(|at| format!("+{at:.1} s"))
+        .collect();
+    println!(
+        "   on: every channel falls due at once (their first samples came within {:.0} ms), at about {} of the \
+         measured window",
+        1000.0 / per_channel,
+        if bursts.is_empty() {
+            "no time".to_string()
+        } else {
+            bursts.join(", ")
+        }
+    );
+    for s in [&off1, &on, &off2] {
+        let mut runs = slow_runs(&s.r.tally, limit_us);
+        let count = runs.len();
+        // The six worst, in time order.
+        runs.sort_by_key(|r| std::cmp::Reverse(r.2));
+        runs.truncate(6);
+        runs.sort_by(|a, b| a.0.total_cmp(&b.0));
+        let (over, slots, _) = s.r.tally.slow_slots(limit_us);
+        let list: Vec<String> = runs
+            .iter()
+            .map(|(a, b, us)| format!("+{a:.1}..+{b:.1} s ({:.1} ms)", *us as f64 / 1000.0))
+            .collect();
+        println!(
+            "   {}: {over} of {slots} 100 ms slots had a sample over 1.5 x p99 off ({:.2} ms), in {count} run(s){}{}",
+            s.name,
+            limit_us as f64 / 1000.0,
+            if list.is_empty() { "" } else { "; the worst: " },
+            list.join(", ")
+        );
+    }
+    let internal: Vec<String> = [&off1, &on, &off2]
+        .iter()
+        .filter_map(|s| {
+            let m = s.metrics.as_ref()?;
+            Some(format!(
+                "{} p99 <= {} ms, over 1 ms {:.4}%, over 5 ms {:.4}%",
+                s.name,
+                m.quantile_bound(0.99) * 1000.0,
+                m.share_over(0.001) * 100.0,
+                m.share_over(0.005) * 100.0
+            ))
+        })
+        .collect();
+    if !internal.is_empty() {
+        println!(
+            "   the daemon's own latency (receipt to output handed to the client, its metrics histogram): {}",
+            internal.join("; ")
+        );
+    }
+    ctx.receiver.per_second(false);
+    report_bursts(&on, p99_off);
+    if let Some(line) = on_log.lines().rev().find(|l| l.contains("reestimated=")) {
+        println!("   on daemon, last counter line: {}", plain(line).trim());
+    }
+    println!();
+
+    let fits = on.metrics.as_ref().map_or(0, |m| m.accepted + m.refused);
+    let expected = p.channels as u64 * periods.floor() as u64;
+    verdicts.push(Verdict {
+        what: format!(
+            "d) re-estimations in the measured {:.0} s (accepted {})",
+            p.reest_on_secs.as_secs_f64(),
+            on.metrics.as_ref().map_or(0, |m| m.accepted)
+        ),
+        measured: fits.to_string(),
+        target: format!(">= {expected}"),
+        pass: fits >= expected && on.metrics.is_some(),
+    });
+    verdicts.push(Verdict {
+        what: format!("d) p99 on / off ({p99_on:.2} / {p99_off:.2} ms)"),
+        measured: format!("{ratio:.2}"),
+        target: "<= 1.5".into(),
+        pass: ratio <= 1.5,
     });
     Ok(())
 }
@@ -727,6 +1405,10 @@ struct Tally {
     since: f64,
     /// Worst latency (µs) of the samples sent in each `SLOT` after `since`: tells one hiccup from a steady tail.
     slots: Vec<u64>,
+    /// Keep `seconds` (see `Receiver::per_second`).
+    per_second: bool,
+    /// The latencies of the samples sent in each second after `since` (2 significant digits), when `per_second`.
+    seconds: Vec<Histogram<u64>>,
 }
 
 /// Width of a slot of `Tally::slots`, in seconds.
@@ -741,6 +1423,8 @@ impl Tally {
             unreadable: 0,
             since,
             slots: Vec::new(),
+            per_second: false,
+            seconds: Vec::new(),
         }
     }
 
@@ -755,6 +1439,15 @@ impl Tally {
                 self.slots.resize(i + 1, 0);
             }
             self.slots[i] = self.slots[i].max(us);
+        }
+        let second = sent - self.since;
+        if self.per_second && (0.0..3600.0).contains(&second) {
+            let i = second as usize;
+            while self.seconds.len() <= i {
+                let h = Histogram::new_with_bounds(1, 600_000_000, 2).expect("histogram bounds");
+                self.seconds.push(h);
+            }
+            self.seconds[i].saturating_record(us);
         }
     }
 
@@ -951,6 +1644,8 @@ struct Receiver {
     received: Arc<AtomicU64>,
     /// See `Receiver::batch_reads`.
     batch: Arc<AtomicBool>,
+    /// See `Receiver::per_second`.
+    per_second: AtomicBool,
     tally: Arc<Mutex<Tally>>,
     status: mpsc::Receiver<(String, String)>,
     stop: Arc<AtomicBool>,
@@ -1010,6 +1705,7 @@ impl Receiver {
             clock,
             received,
             batch,
+            per_second: AtomicBool::new(false),
             tally,
             status,
             stop,
@@ -1034,8 +1730,14 @@ impl Receiver {
         self.batch.store(on, Ordering::Relaxed);
     }
 
+    /// On: the tallies taken from now on keep a histogram per second, to tell stretches of a run apart.
+    fn per_second(&self, on: bool) {
+        self.per_second.store(on, Ordering::Relaxed);
+    }
+
     fn take(&self) -> Tally {
-        let fresh = Tally::new(self.clock.now());
+        let mut fresh = Tally::new(self.clock.now());
+        fresh.per_second = self.per_second.load(Ordering::Relaxed);
         std::mem::replace(&mut *self.tally.lock().expect("tally lock"), fresh)
     }
 
@@ -1326,8 +2028,40 @@ struct Daemon {
     _dir: tempfile::TempDir,
 }
 
+/// What case d changes in the daemon's configuration; the default is what cases a to c run.
+struct Tuning {
+    /// The input topics are `<input>/<channel>`.
+    input: &'static str,
+    /// The channels' nominal sample interval, s (the variances are per interval).
+    interval: f64,
+    /// Re-estimation on with this window (samples) and period (s); None: off.
+    reestimate: Option<(usize, f64)>,
+    /// The metrics endpoint on this loopback port; None: off.
+    metrics_port: Option<u16>,
+}
+
+impl Default for Tuning {
+    fn default() -> Self {
+        Tuning {
+            input: DAEMON_IN,
+            interval: 1.0,
+            reestimate: None,
+            metrics_port: None,
+        }
+    }
+}
+
 impl Daemon {
     fn start(ctx: &Ctx, qos: QoS, max_channels: usize) -> Result<Daemon, String> {
+        Daemon::start_tuned(ctx, qos, max_channels, &Tuning::default())
+    }
+
+    fn start_tuned(
+        ctx: &Ctx,
+        qos: QoS,
+        max_channels: usize,
+        tuning: &Tuning,
+    ) -> Result<Daemon, String> {
         static NEXT: AtomicU64 = AtomicU64::new(0);
         let client_id = format!(
             "gwbench-daemon-{}-{}",
@@ -1336,7 +2070,7 @@ impl Daemon {
         );
         let status = format!("{STATUS_ROOT}/{client_id}");
         let q = qos_number(qos);
-        let config = format!(
+        let mut config = format!(
             r#"# Generated by benches/daemon_e2e.rs: loopback broker, one JSON input per sample, no stale reports.
 [broker]
 host = "127.0.0.1"
@@ -1346,7 +2080,7 @@ clean_session = true
 keep_alive_s = 30
 
 [[inputs]]
-topic = "{DAEMON_IN}/+"
+topic = "{input}/+"
 channel = "{{2}}"
 qos = {q}
 payload = "json"
@@ -1369,12 +2103,23 @@ max_channels = {max_channels}
 
 [channels.default]
 model = "level"
-interval = 1.0
-obs_var = 0.25
-level_var = 0.01
+interval = {interval:?}
+obs_var = {DAEMON_OBS_VAR:?}
+level_var = {DAEMON_LEVEL_VAR:?}
 "#,
-            port = ctx.port
+            port = ctx.port,
+            interval = tuning.interval,
+            input = tuning.input,
         );
+        if let Some((window, every_s)) = tuning.reestimate {
+            let _ = write!(
+                config,
+                "\n[reestimate]\nenabled = true\nwindow = {window}\nevery_s = {every_s:?}\n"
+            );
+        }
+        if let Some(port) = tuning.metrics_port {
+            let _ = write!(config, "\n[metrics]\nlisten = \"127.0.0.1:{port}\"\n");
+        }
         let dir = tempfile::Builder::new()
             .prefix("gwbench-daemon-")
             .tempdir()
@@ -1423,10 +2168,11 @@ level_var = 0.01
         std::fs::read_to_string(&self.log).unwrap_or_default()
     }
 
-    /// SIGTERM, then up to 6 s for a clean exit; prints the daemon's warnings and errors, if any.
-    fn stop(mut self) {
+    /// SIGTERM, then up to 6 s for a clean exit; prints the daemon's warnings and errors, if any, and returns its
+    /// log.
+    fn stop(mut self) -> String {
         let Some(mut child) = self.child.take() else {
-            return;
+            return String::new();
         };
         send_signal(child.id(), "TERM");
         let clean = wait_for(Duration::from_secs(6), || {
@@ -1448,6 +2194,7 @@ level_var = 0.01
                 println!("     {line}");
             }
         }
+        log
     }
 }
 
@@ -1499,6 +2246,10 @@ struct Drive<'a> {
     /// Measured seconds after the warm-up (None: until `count` samples are sent).
     measure: Option<Duration>,
     count: Option<u64>,
+    /// The values to send, per channel (None: a fixed pattern around 50, which is all the filter needs for speed).
+    signal: Option<&'a RefCell<Walk>>,
+    /// Called once, as the measured window begins (case d reads the daemon's counters there).
+    at_measure: Option<&'a dyn Fn()>,
 }
 
 /// CPU and output counts over the measured window of a drive.
@@ -1626,6 +2377,9 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
     let end = d.measure.map(|m| measure_from + m);
     let mut sent: u64 = 0;
     let mut first: Option<Probe> = if d.warmup.is_zero() {
+        if let Some(hook) = d.at_measure {
+            hook();
+        }
         Some(probe(0))
     } else {
         None
@@ -1642,6 +2396,9 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
         let now = Instant::now();
         if first.is_none() && now >= measure_from {
             first = Some(probe(sent));
+            if let Some(hook) = d.at_measure {
+                hook();
+            }
             let _ = rx.take();
         }
         if end.is_some_and(|e| now >= e) || d.count.is_some_and(|c| sent >= c) {
@@ -1670,9 +2427,13 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
         // A short burst in one write, then back to the clock: at most ~1 ms of samples at a time.
         burst.clear();
         for _ in 0..(allowed - sent).min(64) {
-            let topic = &d.topics[(sent % d.topics.len() as u64) as usize];
+            let index = (sent % d.topics.len() as u64) as usize;
+            let topic = &d.topics[index];
             payload.clear();
-            let value = 50.0 + ((sent.wrapping_mul(2_654_435_761) % 1000) as f64) / 500.0;
+            let value = match d.signal {
+                Some(walk) => walk.borrow_mut().next(index),
+                None => 50.0 + ((sent.wrapping_mul(2_654_435_761) % 1000) as f64) / 500.0,
+            };
             let _ = write!(payload, "{{\"v\":{value:.3},\"t\":{}}}", ctx.clock.now());
             publisher.encode(&mut burst, topic, payload.as_bytes(), d.qos);
             sent += 1;
