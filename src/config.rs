@@ -31,6 +31,7 @@ pub use daemon::{
     InputConfig, JsonPayload, LimitsConfig, OutputConfig, PayloadFormat, Secret, TemplatePart,
     TimeFormat, TimingConfig, TlsConfig, MAX_PACKET_LIMIT,
 };
+pub use daemon::{InstanceConfig, MAX_INSTANCES};
 pub use daemon::{MetricsConfig, DEFAULT_METRICS_LISTEN};
 pub use env::{EnvOverride, ENV_NOT_CONFIG, ENV_PREFIX, ENV_SEPARATOR};
 pub use flags::FlagRules;
@@ -130,6 +131,8 @@ pub struct Config {
     pub limits: LimitsConfig,
     /// `[metrics]`; None when the table is absent (the endpoint is off).
     pub metrics: Option<MetricsConfig>,
+    /// `[instance]`: which share of the channels this daemon handles (default: all).
+    pub instance: InstanceConfig,
     /// The name errors use for the file (the path as given).
     pub source: String,
     /// The environment variables that were applied, in the order they were applied.
@@ -415,6 +418,7 @@ impl Config {
                 .as_ref()
                 .map(|m| daemon::metrics(m, ctx))
                 .transpose()?,
+            instance: daemon::instance(&raw.instance.unwrap_or_default(), ctx)?,
             source: source.to_string(),
             env: Vec::new(),
             base: None,
@@ -685,6 +689,7 @@ struct RawConfig {
     timing: Option<daemon::RawTiming>,
     limits: Option<daemon::RawLimits>,
     metrics: Option<daemon::RawMetrics>,
+    instance: Option<daemon::RawInstance>,
     flags: Option<flags::RawFlags>,
     reestimate: Option<learn::RawLearn>,
 }

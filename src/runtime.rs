@@ -13,6 +13,10 @@
 //!   step, then sent to the worker that owns the channel: a stable hash of the channel name ([`shard`]) so one
 //!   channel's samples stay in order while channels spread over the cores. The worker queues are bounded; a full
 //!   queue pauses reading from the broker (TCP back-pressure) rather than dropping samples.
+//! - **Scale-out.** Several daemons may share one broker's channels (`[instance]`): every one subscribes to the
+//!   same topics and keeps only the channels its [`shard::Instance`] owns. The owner is decided from the topic
+//!   alone, so another instance's messages are dropped before their payload is parsed, and only counted
+//!   (`not_ours`): at N instances, N - 1 of every N messages take this path, so it must stay cheap and quiet.
 //! - **Workers.** Each owns its channels' state and feeds every sample to `Channel::on_sample`, then hands one
 //!   output per sample to the MQTT client with `try_publish`: the request queue is drained only by the event loop
 //!   task, so a worker must never wait on it. A full queue drops the output and counts it (`publish_dropped`).
@@ -43,7 +47,7 @@ pub mod tls;
 
 use crate::channel::{Channel, Outcome, SampleStatus};
 use crate::config::ChannelConfig;
-use crate::ingest::{Router, Sample};
+use crate::ingest::{Reject, Resolved, Router, Sample};
 use crate::notify::{Message, Notifier};
 use crate::publish::{self, OutputTopic};
 use crate::reestimate::{self, Decision, Learner};
@@ -113,6 +117,8 @@ pub struct Settings {
     pub request_queue: usize,
     /// Most channels the daemon keeps state for; samples of further channels are rejected.
     pub max_channels: usize,
+    /// This daemon's share of the channels; messages for the others are ignored and counted (`not_ours`).
+    pub instance: shard::Instance,
     /// Period of the counter summary in the log.
     pub summary_every: Duration,
 }
@@ -559,6 +565,44 @@ enum PollEnd {
     Closed,
 }
 
+/// What the event loop does with one message.
+#[derive(Debug, Clone, PartialEq)]
+enum Routed {
+    Sample(Sample),
+    /// Another instance owns the channel: ignored, payload unread.
+    NotOurs,
+    /// Refused, and what to count it against: the channel when the topic names one, else the topic.
+    Refused(Reject, String),
+}
+
+/// `Router::route`, with the owner check between naming the channel and reading the payload, so a message for
+/// another instance costs a topic match and a hash, never a JSON parse.
+fn route_message(
+    router: &Router,
+    instance: &shard::Instance,
+    topic: &str,
+    payload: &[u8],
+    received: f64,
+) -> Routed {
+    let Resolved { rule, channel } = match router.resolve(topic) {
+        Ok(r) => r,
+        Err(reject) => return Routed::Refused(reject, topic.to_string()),
+    };
+    if !instance.owns(&channel) {
+        return Routed::NotOurs;
+    }
+    match router.rules()[rule].read(payload, received) {
+        Ok(r) => Routed::Sample(Sample {
+            channel,
+            time: r.time,
+            value: r.value,
+            time_from_payload: r.time_from_payload,
+            bad_quality: r.bad_quality,
+        }),
+        Err(reject) => Routed::Refused(reject, channel),
+    }
+}
+
 async fn poll_loop(
     mut eventloop: EventLoop,
     client: AsyncClient,
@@ -606,8 +650,10 @@ async fn poll_loop(
                 }
                 let arrived = Instant::now();
                 let received = (shared.clock)();
-                match router.route(&p.topic, &p.payload, received) {
-                    Ok(sample) => {
+                match route_message(&router, &s.instance, &p.topic, &p.payload, received) {
+                    // Not logged: at N instances this is N - 1 of every N messages.
+                    Routed::NotOurs => Counters::bump(&shared.counters.not_ours),
+                    Routed::Sample(sample) => {
                         let w = shard::shard_of(&sample.channel, senders.len());
                         // Awaiting here is the back-pressure: a worker behind pauses reading from the broker.
                         // It cannot deadlock: workers never wait on anything this task drains. No tick while
@@ -623,12 +669,9 @@ async fn poll_loop(
                             );
                         }
                     }
-                    Err(reject) => shared.refuse(&Refusal {
+                    Routed::Refused(reject, key) => shared.refuse(&Refusal {
                         reason: reject.reason(),
-                        // Counted against the channel when the topic names one, else against the topic.
-                        key: router
-                            .channel_for(&p.topic)
-                            .unwrap_or_else(|| p.topic.clone()),
+                        key,
                         detail: format!(
                             "{reject} (topic {})",
                             counters::clip(&p.topic, counters::MAX_KEY_BYTES)
@@ -1027,7 +1070,7 @@ impl Worker {
             let want = self.config.learn_for(&state.name);
             if want != state.learner.as_ref().map(|l| &l.settings) {
                 info!(channel = %state.name, "reload: re-estimation settings changed; its window starts again");
-                state.learner = want.map(|s| Box::new(Learner::new(*s)));
+                state.learner = want.map(|s| Box::new(Learner::for_channel(*s, &state.name)));
             }
         }
         for i in 0..self.channels.len() {
@@ -1135,7 +1178,7 @@ impl Worker {
                 .learn_for(name)
                 .copied()
                 .or_else(|| learning.map(|_| reestimate::LearnSettings::default()))
-                .map(|s| Box::new(Learner::new(s))),
+                .map(|s| Box::new(Learner::for_channel(s, name))),
             fitting: false,
         });
         let stale_index = self.stale.add();
@@ -1302,6 +1345,7 @@ mod tests {
             worker_queue: 1024,
             request_queue: 4096,
             max_channels: 1000,
+            instance: shard::Instance::ALL,
             summary_every: Duration::from_secs(60),
         }
     }
@@ -1336,6 +1380,70 @@ mod tests {
         });
         let e = mqtt_options(&s).unwrap_err().to_string();
         assert!(e.contains("missing-ca.pem"), "{e}");
+    }
+
+    fn plain_router() -> Router {
+        let rule = crate::ingest::InputRule::new(
+            "plant/raw/+",
+            "{2}",
+            crate::ingest::PayloadFormat::Number,
+            1024,
+        )
+        .unwrap();
+        Router::new(vec![rule])
+    }
+
+    #[test]
+    fn one_instance_routes_like_the_router() {
+        let router = plain_router();
+        for (topic, payload) in [
+            ("plant/raw/TT-101", &b"72.5"[..]),
+            ("plant/raw/FT-201", b"not a number"),
+            ("plant/other/TT-101", b"1"),
+        ] {
+            let got = route_message(&router, &shard::Instance::ALL, topic, payload, 5.0);
+            match router.route(topic, payload, 5.0) {
+                Ok(sample) => assert_eq!(got, Routed::Sample(sample)),
+                Err(reject) => {
+                    let key = router.channel_for(topic).unwrap_or(topic.to_string());
+                    assert_eq!(got, Routed::Refused(reject, key));
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn other_instances_channels_are_dropped_before_the_payload_is_read() {
+        let router = plain_router();
+        let owner = shard::instance_of("TT-101", 2);
+        let mine = shard::Instance {
+            index: owner,
+            count: 2,
+        };
+        let other = shard::Instance {
+            index: 1 - owner,
+            count: 2,
+        };
+        assert!(matches!(
+            route_message(&router, &mine, "plant/raw/TT-101", b"72.5", 5.0),
+            Routed::Sample(s) if s.channel == "TT-101" && s.value == Some(72.5)
+        ));
+        // A payload that would be refused is not even looked at by the instance that does not own the channel.
+        assert_eq!(
+            route_message(&router, &other, "plant/raw/TT-101", b"garbage", 5.0),
+            Routed::NotOurs
+        );
+        assert_eq!(
+            route_message(&router, &mine, "plant/raw/TT-101", b"garbage", 5.0),
+            Routed::Refused(Reject::NotNumber, "TT-101".to_string())
+        );
+        // A topic that names no channel has no owner: every instance refuses it.
+        for instance in [mine, other] {
+            assert_eq!(
+                route_message(&router, &instance, "plant/other/x", b"1", 5.0),
+                Routed::Refused(Reject::NoRule, "plant/other/x".to_string())
+            );
+        }
     }
 
     #[test]

@@ -1,5 +1,5 @@
-//! The daemon's sections of the configuration: `[broker]`, `[[inputs]]`, `[output]`, `[status]`, `[timing]` and
-//! `[limits]`, as raw strict structs and as the typed, validated values `run` and `check` use.
+//! The daemon's sections of the configuration: `[broker]`, `[[inputs]]`, `[output]`, `[status]`, `[timing]`,
+//! `[limits]` and `[instance]`, as raw strict structs and as the typed, validated values `run` and `check` use.
 //!
 //! `config` deserialises these sections with the rest of the file (unknown keys are errors there) and calls the
 //! validators here, which need no IO: every present section is checked whatever the command. What needs the file
@@ -198,6 +198,25 @@ impl Default for LimitsConfig {
     }
 }
 
+/// Scale-out: this daemon is instance `index` of `count` that share the channels, and handles only the channels
+/// whose stable hash modulo `count` is `index` (`runtime::shard::instance_hash`). The default, 0 of 1, is every
+/// channel. Always `count >= 1` and `index < count`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct InstanceConfig {
+    pub index: u64,
+    pub count: u64,
+}
+
+impl Default for InstanceConfig {
+    fn default() -> Self {
+        InstanceConfig { index: 0, count: 1 }
+    }
+}
+
+/// Most instances one deployment may split its channels over: far beyond any plant, small enough that a typo
+/// (an id pasted into `count`) is caught.
+pub const MAX_INSTANCES: i64 = 1024;
+
 /// The HTTP endpoint for Prometheus metrics (`/metrics`) and health (`/health`): on only when a `[metrics]` table is
 /// given, and then on the loopback interface unless `listen` says otherwise.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -282,6 +301,13 @@ pub(super) struct RawTiming {
 #[serde(deny_unknown_fields, expecting = "a [limits] table")]
 pub(super) struct RawLimits {
     max_channels: Option<i64>,
+}
+
+#[derive(Debug, Default, Clone, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "an [instance] table")]
+pub(super) struct RawInstance {
+    index: Option<i64>,
+    count: Option<i64>,
 }
 
 #[derive(Debug, Default, Clone, Deserialize)]
@@ -774,6 +800,26 @@ pub(super) fn limits(raw: &RawLimits, ctx: &Ctx) -> Result<LimitsConfig, ConfigE
     })
 }
 
+pub(super) fn instance(raw: &RawInstance, ctx: &Ctx) -> Result<InstanceConfig, ConfigError> {
+    let count = ctx.int("instance.count", raw.count.unwrap_or(1), 1, MAX_INSTANCES)?;
+    let index = raw.index.unwrap_or(0);
+    if !(0..count).contains(&index) {
+        let range = if count == 1 {
+            "must be 0 when instance.count is 1 (the default)".to_string()
+        } else {
+            format!(
+                "must be an integer from 0 to {} (instance.count is {count}; instances are numbered from 0)",
+                count - 1
+            )
+        };
+        return Err(ctx.invalid("instance.index", format!("{range} (got {index})")));
+    }
+    Ok(InstanceConfig {
+        index: index as u64,
+        count: count as u64,
+    })
+}
+
 pub(super) fn metrics(raw: &RawMetrics, ctx: &Ctx) -> Result<MetricsConfig, ConfigError> {
     let text = raw.listen.as_deref().unwrap_or(DEFAULT_METRICS_LISTEN);
     let listen: std::net::SocketAddr = text.trim().parse().map_err(|_| {
@@ -1062,6 +1108,8 @@ pub struct DaemonConfig {
     pub max_channels: usize,
     /// The metrics endpoint; None: off (no `[metrics]` table).
     pub metrics: Option<MetricsConfig>,
+    /// Which share of the channels this daemon handles (`[instance]`; default: all).
+    pub instance: InstanceConfig,
     /// Environment variables that overrode keys, as `VAR -> key` (values are not kept: one may be a password).
     pub env_overrides: Vec<String>,
 }
@@ -1217,6 +1265,7 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         stale_every_s: config.timing.stale_every_s,
         max_channels: config.limits.max_channels,
         metrics: config.metrics,
+        instance: config.instance,
         env_overrides: config
             .env
             .iter()
@@ -1235,6 +1284,20 @@ fn readable_file(path: &Path) -> Result<(), String> {
         Ok(())
     } else {
         Err(format!("{} is not a file", path.display()))
+    }
+}
+
+impl InstanceConfig {
+    /// For `check`: `1 of 2 (channels whose stable hash mod 2 == 1)`, or `0 of 1 (every channel)`.
+    pub fn describe(&self) -> String {
+        if self.count <= 1 {
+            format!("{} of {} (every channel)", self.index, self.count)
+        } else {
+            format!(
+                "{} of {} (channels whose stable hash mod {} == {})",
+                self.index, self.count, self.count, self.index
+            )
+        }
     }
 }
 
@@ -1350,6 +1413,7 @@ impl DaemonConfig {
             }
         }
         let _ = writeln!(s, "limits: at most {} channels", self.max_channels);
+        let _ = writeln!(s, "instance: {}", self.instance.describe());
         match &self.metrics {
             None => {
                 let _ = writeln!(s, "metrics: off");
@@ -1588,6 +1652,7 @@ mod tests {
             ("[status]", "status.topics"),
             ("[timing]", "timing.stale_s"),
             ("[limits]", "limits.channels"),
+            ("[instance]", "instance.shard"),
         ] {
             let name = key.rsplit('.').next().unwrap();
             let m = message(&with(header, &format!("{name} = 1")));
@@ -2253,6 +2318,103 @@ mod tests {
                 .to_string();
         assert!(
             e.contains("metrics.listen") && e.contains("(environment GAUGEWISE_METRICS__LISTEN)"),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn instance_defaults_to_every_channel() {
+        let d = load(&full("")).unwrap();
+        assert_eq!(d.instance, InstanceConfig { index: 0, count: 1 });
+        assert!(
+            d.describe().contains("instance: 0 of 1 (every channel)"),
+            "{}",
+            d.describe()
+        );
+        let d = load(&full(
+            "[instance]
+index = 1
+count = 2
+",
+        ))
+        .unwrap();
+        assert_eq!(d.instance, InstanceConfig { index: 1, count: 2 });
+        assert!(
+            d.describe()
+                .contains("instance: 1 of 2 (channels whose stable hash mod 2 == 1)"),
+            "{}",
+            d.describe()
+        );
+        // count alone: this is instance 0 of them.
+        let d = load(&full(
+            "[instance]
+count = 3
+",
+        ))
+        .unwrap();
+        assert_eq!(d.instance, InstanceConfig { index: 0, count: 3 });
+    }
+
+    #[test]
+    fn instance_errors_name_the_key() {
+        let cases = [
+            (
+                "count = 0",
+                "instance.count: must be an integer from 1 to 1024 (got 0)",
+            ),
+            (
+                "count = -2",
+                "instance.count: must be an integer from 1 to 1024 (got -2)",
+            ),
+            (
+                "count = 2.0",
+                "instance.count: invalid type: floating point",
+            ),
+            (
+                "index = 2\ncount = 2",
+                "instance.index: must be an integer from 0 to 1 (instance.count is 2; instances are numbered from \
+                 0) (got 2)",
+            ),
+            (
+                "index = -1\ncount = 2",
+                "instance.index: must be an integer from 0 to 1",
+            ),
+            (
+                "index = 1",
+                "instance.index: must be 0 when instance.count is 1 (the default) (got 1)",
+            ),
+            ("index = \"1\"", "instance.index: invalid type: string"),
+        ];
+        for (body, expected) in cases {
+            let m = message(&with("[instance]", body));
+            assert!(
+                m.starts_with(&format!("gw.toml: {expected}")),
+                "expected {expected}\ngot {m}"
+            );
+        }
+    }
+
+    #[test]
+    fn instance_from_the_environment() {
+        let c = Config::from_str_with_env(
+            &full(""),
+            FILE,
+            [
+                ("GAUGEWISE_INSTANCE__INDEX", "2"),
+                ("GAUGEWISE_INSTANCE__COUNT", "3"),
+            ],
+        )
+        .unwrap();
+        assert_eq!(c.instance, InstanceConfig { index: 2, count: 3 });
+        let e = Config::from_str_with_env(
+            &full("[instance]\ncount = 2\n"),
+            FILE,
+            [("GAUGEWISE_INSTANCE__INDEX", "2")],
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("instance.index") && e.contains("(environment GAUGEWISE_INSTANCE__INDEX)"),
             "{e}"
         );
     }

@@ -36,6 +36,8 @@ pub fn clip(text: &str, max: usize) -> &str {
 pub struct Counters {
     /// Input messages taken from the broker (routed or not).
     pub received: AtomicU64,
+    /// Input messages for channels another instance owns (`[instance]`): ignored before the payload is read.
+    pub not_ours: AtomicU64,
     /// Output messages handed to the MQTT client.
     pub published: AtomicU64,
     /// Input samples with status `late` (older than the channel's last one).
@@ -66,6 +68,8 @@ pub struct Counters {
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct CounterSnapshot {
     pub received: u64,
+    /// Messages for channels of other instances, ignored.
+    pub not_ours: u64,
     pub published: u64,
     pub rejected: u64,
     pub late: u64,
@@ -111,6 +115,7 @@ impl Counters {
         let map = self.rejected.lock().unwrap_or_else(|p| p.into_inner());
         CounterSnapshot {
             received: get(&self.received),
+            not_ours: get(&self.not_ours),
             published: get(&self.published),
             rejected: get(&self.rejected_total),
             late: get(&self.late),
@@ -159,6 +164,7 @@ impl fmt::Display for CounterSnapshot {
             let parts: Vec<String> = by_reason.iter().map(|(r, n)| format!("{r}={n}")).collect();
             write!(f, " ({})", parts.join(" "))?;
         }
+        write!(f, " not_ours={}", self.not_ours)?;
         write!(
             f,
             " late={} duplicate={} stale={} publish_dropped={} reconnects={} withheld={} flags_raised={}",
@@ -234,7 +240,7 @@ mod tests {
         assert_eq!(s.rejected_by[&("no_channel".into(), "plant/x".into())], 1);
         assert_eq!(
             s.to_string(),
-            "received=2 published=1 rejected=3 (no_channel=1 not_json=2) late=0 duplicate=0 stale=0 \
+            "received=2 published=1 rejected=3 (no_channel=1 not_json=2) not_ours=0 late=0 duplicate=0 stale=0 \
              publish_dropped=0 reconnects=0 withheld=0 flags_raised=0"
         );
     }

@@ -214,6 +214,12 @@ pub fn render(s: &Snapshot) -> String {
 
     counter(
         &mut out,
+        "gaugewise_samples_not_ours_total",
+        "Input messages for channels another instance owns ([instance]), ignored before their payload is read.",
+        c.not_ours,
+    );
+    counter(
+        &mut out,
         "gaugewise_samples_late_total",
         "Samples older than their channel's last one: dropped without touching the state.",
         c.late,
@@ -439,6 +445,7 @@ mod tests {
             ..Snapshot::default()
         };
         s.counters.received = 10;
+        s.counters.not_ours = 6;
         s.counters.flags_raised[2] = 4; // bias
         s.counters
             .rejected_by
@@ -455,6 +462,7 @@ mod tests {
         let text = render(&s);
         let lines: Vec<&str> = text.lines().collect();
         assert!(lines.contains(&"gaugewise_samples_received_total 10"));
+        assert!(lines.contains(&"gaugewise_samples_not_ours_total 6"));
         assert!(lines.contains(&"gaugewise_rejected_total{reason=\"not_json\"} 3"));
         assert!(lines.contains(&"gaugewise_rejected_total{reason=\"too_large\"} 0"));
         assert!(lines.contains(&"gaugewise_rejected_total{reason=\"some \\\"new\\\" reason\"} 1"));

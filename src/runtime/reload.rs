@@ -10,7 +10,8 @@
 //!   detectors, order of samples). A channel whose model or flag design changed starts again from the new ones,
 //!   as a new channel would, and the log names it and what changed ([`change`]). Channels that appear later
 //!   simply get the new configuration.
-//! - **Everything else** (`[broker]`, `[[inputs]]`, `[output]`, `[status]`, `[timing]`, `[limits]`, `[metrics]`) is
+//! - **Everything else** (`[broker]`, `[[inputs]]`, `[output]`, `[status]`, `[timing]`, `[limits]`, `[metrics]`,
+//!   `[instance]`) is
 //!   kept as it was, and the log says, per section, that the change waits for a restart. These change the MQTT
 //!   connection, the subscriptions or the session, which a restart redoes cleanly; applying them in place would
 //!   mean a reconnect in the middle of the stream for what is a rare edit. The running configuration the next
@@ -65,6 +66,8 @@ pub fn plan(running: &DaemonConfig, new: &DaemonConfig) -> Plan {
     );
     differs("limits", running.max_channels == new.max_channels);
     differs("metrics", running.metrics == new.metrics);
+    // Applying it in place would hand channels between running instances with no one owning them in between.
+    differs("instance", running.instance == new.instance);
     Plan {
         channels: running.channels != new.channels,
         need_restart,
@@ -271,5 +274,7 @@ topic = "brackenfield/clean/{channel}"
         );
         let text = BASE.replace("brackenfield/clean/", "brackenfield/estimates/");
         assert_eq!(plan(&old, &daemon(&text)).need_restart, vec!["output"]);
+        let text = format!("{BASE}\n[instance]\nindex = 1\ncount = 2\n");
+        assert_eq!(plan(&old, &daemon(&text)).need_restart, vec!["instance"]);
     }
 }

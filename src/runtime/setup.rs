@@ -89,6 +89,10 @@ pub fn from_config(
         worker_queue: WORKER_QUEUE,
         request_queue: b.request_queue,
         max_channels: config.max_channels,
+        instance: super::shard::Instance {
+            index: config.instance.index,
+            count: config.instance.count,
+        },
         summary_every: SUMMARY_EVERY,
     };
     Ok((
@@ -198,6 +202,7 @@ qos = 0
         assert_eq!(offline["status"], "offline");
         assert_eq!(offline["started"], online["started"]);
         assert!(s.workers >= 1);
+        assert_eq!(s.instance, super::super::shard::Instance::ALL);
 
         let sample = pipeline
             .router
