@@ -2432,7 +2432,13 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
             payload.clear();
             let value = match d.signal {
                 Some(walk) => walk.borrow_mut().next(index),
-                None => 50.0 + ((sent.wrapping_mul(2_654_435_761) % 1000) as f64) / 500.0,
+                // Hash noise per channel and sample: the round number `sent / topics` must enter, or every
+                // channel would see one constant value (and be flagged stuck).
+                None => {
+                    let n = sent / d.topics.len() as u64;
+                    let h = n.wrapping_mul(2_654_435_761) ^ (index as u64).wrapping_mul(40_503);
+                    50.0 + ((h.wrapping_mul(2_654_435_761) >> 7) % 1000) as f64 / 500.0
+                }
             };
             let _ = write!(payload, "{{\"v\":{value:.3},\"t\":{}}}", ctx.clock.now());
             publisher.encode(&mut burst, topic, payload.as_bytes(), d.qos);

@@ -16,7 +16,7 @@
 //! ones by `min_gain` nats (default 3: twice that is the chi-square(2) 95% point, 5.99, for the two variances
 //! most models have). Otherwise the current parameters stay and the reason is reported.
 //!
-//! Pure core, no IO: the daemon runs [`propose`] on a blocking pool off the message path and applies the decision
+//! Pure core, no IO: the daemon runs [`propose`] on idle-priority threads off the message path and applies the decision
 //! to the channel with [`crate::channel::Channel::set_model`]; `replay` runs the same schedule inline.
 
 use crate::channel::{Channel, Outcome, SampleStatus};
@@ -67,12 +67,8 @@ pub struct Window {
     /// Samples still to exclude after a flagged stretch ends.
     exclude_next: usize,
     margin: usize,
-    /// Channel time of the last re-estimation (or of the first sample, less `phase` periods).
+    /// Channel time of the last re-estimation (or of the first sample).
     last_run: f64,
-    /// Fraction of a period the first re-estimation comes early (see [`Learner::for_channel`]).
-    phase: f64,
-    /// A re-estimation has run (later ones keep the full period).
-    ran: bool,
 }
 
 /// Flags whose samples must not be learnt from.
@@ -93,8 +89,6 @@ impl Window {
             exclude_next: 0,
             margin,
             last_run: f64::NAN,
-            phase: 0.0,
-            ran: false,
         }
     }
 
@@ -166,20 +160,14 @@ impl Window {
 
     /// Whether a re-estimation is due at channel time `now`.
     pub fn due(&self, now: f64, settings: &LearnSettings) -> bool {
-        let period = if self.ran {
-            settings.every_s
-        } else {
-            settings.every_s * (1.0 - self.phase)
-        };
         !self.last_run.is_nan()
-            && now - self.last_run >= period
+            && now - self.last_run >= settings.every_s
             && self.usable() >= settings.min_samples.max(estimate::MIN_OBSERVATIONS)
     }
 
     /// Marks a re-estimation as started at `now` (whatever its outcome), so the next is `every_s` later.
     pub fn mark_run(&mut self, now: f64) {
         self.last_run = now;
-        self.ran = true;
     }
 
     /// The window's times and values in time order (a copy, for a fit off the message path).
@@ -195,7 +183,7 @@ impl Window {
 }
 
 /// A channel's re-estimation state: its settings and window. The daemon takes the window with
-/// [`Learner::start`] and fits it on a blocking pool; `replay` calls [`Learner::run_inline`], which does the same
+/// [`Learner::start`] and fits it on an idle-priority thread; `replay` calls [`Learner::run_inline`], which does the same
 /// at once.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Learner {
@@ -209,22 +197,6 @@ impl Learner {
             window: Window::new(settings.window, settings.margin),
             settings,
         }
-    }
-
-    /// A learner for channel `name`, whose re-estimations fall at a fixed phase of `every_s` taken from the
-    /// name: channels that start together (a daemon start, a plant coming back) would otherwise all fall due in
-    /// the same instant and queue their fits in one burst. The daemon and `replay` both use it, so a replay
-    /// still refits at the samples the live daemon does.
-    pub fn for_channel(settings: LearnSettings, name: &str) -> Self {
-        let mut l = Learner::new(settings);
-        // FNV-1a, 64 bits: stable across versions and platforms.
-        let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-        for b in name.bytes() {
-            h ^= u64::from(b);
-            h = h.wrapping_mul(0x0000_0100_0000_01b3);
-        }
-        l.window.phase = (h >> 11) as f64 / (1u64 << 53) as f64;
-        l
     }
 
     pub fn window(&self) -> &Window {
@@ -621,34 +593,6 @@ mod tests {
         assert!(v[40..].iter().all(|x| x.is_nan()), "{:?}", &v[36..]);
         assert!(v[38..40].iter().all(|x| x.is_nan()));
         assert!(!v[37].is_nan());
-    }
-
-    /// Channels started together fall due at different times, each at a fixed phase of the period.
-    #[test]
-    fn first_reestimations_are_spread_by_channel_name() {
-        let settings = LearnSettings {
-            every_s: 100.0,
-            min_samples: 10,
-            ..LearnSettings::default()
-        };
-        let first_due = |name: &str| {
-            let mut c = Channel::new(&level(1.0, 0.1)).unwrap();
-            let mut l = Learner::for_channel(settings, name);
-            (0..200)
-                .find(|&k| {
-                    l.observe(&c.on_sample(k as f64, Some(0.0)));
-                    l.due(k as f64)
-                })
-                .unwrap()
-        };
-        let dues: Vec<usize> = ["TT-101", "TT-102", "FT-201", "LT-301", "PT-401"]
-            .iter()
-            .map(|n| first_due(n))
-            .collect();
-        assert!(dues.iter().all(|d| (10..=100).contains(d)), "{dues:?}");
-        let distinct: std::collections::BTreeSet<_> = dues.iter().collect();
-        assert!(distinct.len() >= 4, "{dues:?}");
-        assert_eq!(first_due("TT-101"), dues[0], "stable");
     }
 
     #[test]

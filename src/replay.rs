@@ -236,7 +236,7 @@ impl<'a> Replay<'a> {
                 .learn_for(&s.name)
                 .copied()
                 .or_else(|| learning.map(|_| crate::reestimate::LearnSettings::default()));
-            learners.push(settings.map(|l| Learner::for_channel(l, &s.name)));
+            learners.push(settings.map(Learner::new));
         }
         let learn_off = series
             .iter()

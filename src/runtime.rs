@@ -36,6 +36,7 @@
 
 pub mod backoff;
 pub mod counters;
+pub mod fitpool;
 pub mod http;
 pub mod metrics;
 pub mod reload;
@@ -270,7 +271,7 @@ struct Shared {
     latency: Vec<LatencyHistogram>,
     /// Re-estimations running at once on the blocking pool, across workers: at most half the cores, so the
     /// message path always has a core.
-    fit_slots: Arc<tokio::sync::Semaphore>,
+    fits: fitpool::FitPool,
 }
 
 impl Shared {
@@ -290,7 +291,7 @@ impl Shared {
             reloads_applied: AtomicU64::new(0),
             reloads_refused: AtomicU64::new(0),
             latency: (0..workers).map(|_| LatencyHistogram::new()).collect(),
-            fit_slots: Arc::new(tokio::sync::Semaphore::new((workers / 2).max(1))),
+            fits: fitpool::FitPool::new((workers / 2).max(1)),
             settings,
         }
     }
@@ -964,21 +965,20 @@ impl Worker {
         let settings = learner.settings;
         state.fitting = true;
         let spec = state.channel.spec().clone();
-        let slots = self.shared.fit_slots.clone();
         let tx = self.fits_tx.clone();
-        tokio::spawn(async move {
-            let decision = match slots.acquire_owned().await {
-                Ok(_permit) => tokio::task::spawn_blocking(move || match learning {
-                    Some(kind) => reestimate::propose_first(&spec, kind, &times, &values),
-                    None => reestimate::propose(&spec, &times, &values, &settings),
-                })
-                .await
-                .ok(),
-                Err(_) => None,
-            };
+        let queued = self.shared.fits.submit(move || {
+            let decision = std::panic::catch_unwind(|| match learning {
+                Some(kind) => reestimate::propose_first(&spec, kind, &times, &values),
+                None => reestimate::propose(&spec, &times, &values, &settings),
+            })
+            .ok();
             // The worker may have stopped meanwhile; then nobody needs the result.
             let _ = tx.send(FitDone { index: i, decision });
         });
+        if !queued {
+            state.fitting = false;
+            Counters::bump(&self.shared.counters.reestimate_failed);
+        }
     }
 
     /// Applies a finished re-estimation: an accepted one replaces the channel's parameters (if the channel still
@@ -1070,7 +1070,7 @@ impl Worker {
             let want = self.config.learn_for(&state.name);
             if want != state.learner.as_ref().map(|l| &l.settings) {
                 info!(channel = %state.name, "reload: re-estimation settings changed; its window starts again");
-                state.learner = want.map(|s| Box::new(Learner::for_channel(*s, &state.name)));
+                state.learner = want.map(|s| Box::new(Learner::new(*s)));
             }
         }
         for i in 0..self.channels.len() {
@@ -1178,7 +1178,7 @@ impl Worker {
                 .learn_for(name)
                 .copied()
                 .or_else(|| learning.map(|_| reestimate::LearnSettings::default()))
-                .map(|s| Box::new(Learner::for_channel(s, name))),
+                .map(|s| Box::new(Learner::new(s))),
             fitting: false,
         });
         let stale_index = self.stale.add();
