@@ -122,27 +122,16 @@ pub(super) fn rules(
     let mut matchers = Vec::with_capacity(raw.overrides.len());
     for (i, o) in raw.overrides.iter().enumerate() {
         let path = format!("flags.override[{i}]");
-        if !o.overrides.is_empty() {
-            return Err(ctx.invalid(
-                format!("{path}.override"),
-                "overrides do not nest; list every [[flags.override]] at the top level",
-            ));
-        }
-        let pattern = o.pattern.clone().ok_or_else(|| {
-            ctx.missing(
-                format!("{path}.match"),
-                "a glob on the channel name, e.g. match = \"TT-*\"",
-            )
-        })?;
-        let glob = Glob::new(&pattern).map_err(|e| {
-            ctx.invalid(
-                format!("{path}.match"),
-                format!("invalid glob: {}", e.kind()),
-            )
-        })?;
+        let (pattern, matcher) = override_pattern(
+            o.pattern.as_deref(),
+            !o.overrides.is_empty(),
+            "flags",
+            &path,
+            ctx,
+        )?;
         let d = design(o, default, &path, ctx)?;
         check(&d, intervals, &path, ctx)?;
-        matchers.push(glob.compile_matcher());
+        matchers.push(matcher);
         overrides.push((pattern, d));
     }
     Ok(FlagRules {
@@ -150,6 +139,36 @@ pub(super) fn rules(
         overrides,
         matchers,
     })
+}
+
+/// The `match` glob of an override table of `section` (`flags`, `reestimate`) at `path`, compiled; refuses a
+/// missing pattern, an invalid glob and nested overrides.
+pub(super) fn override_pattern(
+    pattern: Option<&str>,
+    nested: bool,
+    section: &str,
+    path: &str,
+    ctx: &Ctx,
+) -> Result<(String, GlobMatcher), ConfigError> {
+    if nested {
+        return Err(ctx.invalid(
+            format!("{path}.override"),
+            format!("overrides do not nest; list every [[{section}.override]] at the top level"),
+        ));
+    }
+    let pattern = pattern.ok_or_else(|| {
+        ctx.missing(
+            format!("{path}.match"),
+            "a glob on the channel name, e.g. match = \"TT-*\"",
+        )
+    })?;
+    let glob = Glob::new(pattern).map_err(|e| {
+        ctx.invalid(
+            format!("{path}.match"),
+            format!("invalid glob: {}", e.kind()),
+        )
+    })?;
+    Ok((pattern.to_string(), glob.compile_matcher()))
 }
 
 fn check(d: &FlagDesign, intervals: &[f64], path: &str, ctx: &Ctx) -> Result<(), ConfigError> {

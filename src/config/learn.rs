@@ -5,7 +5,7 @@
 use super::daemon::Ctx;
 use super::ConfigError;
 use crate::reestimate::LearnSettings;
-use globset::{Glob, GlobMatcher};
+use globset::GlobMatcher;
 use serde::Deserialize;
 
 #[derive(Debug, Default, Clone, Deserialize)]
@@ -69,26 +69,15 @@ pub(super) fn rules(raw: Option<&RawLearn>, ctx: &Ctx) -> Result<LearnRules, Con
     let mut matchers = Vec::with_capacity(raw.overrides.len());
     for (i, o) in raw.overrides.iter().enumerate() {
         let path = format!("reestimate.override[{i}]");
-        if !o.overrides.is_empty() {
-            return Err(ctx.invalid(
-                format!("{path}.override"),
-                "overrides do not nest; list every [[reestimate.override]] at the top level",
-            ));
-        }
-        let pattern = o.pattern.clone().ok_or_else(|| {
-            ctx.missing(
-                format!("{path}.match"),
-                "a glob on the channel name, e.g. match = \"TT-*\"",
-            )
-        })?;
-        let glob = Glob::new(&pattern).map_err(|e| {
-            ctx.invalid(
-                format!("{path}.match"),
-                format!("invalid glob: {}", e.kind()),
-            )
-        })?;
+        let (pattern, matcher) = super::flags::override_pattern(
+            o.pattern.as_deref(),
+            !o.overrides.is_empty(),
+            "reestimate",
+            &path,
+            ctx,
+        )?;
         let (o_on, s) = settings(o, (on, base), &path, ctx)?;
-        matchers.push(glob.compile_matcher());
+        matchers.push(matcher);
         overrides.push((pattern, o_on.then_some(s)));
     }
     Ok(LearnRules {
