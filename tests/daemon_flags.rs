@@ -6,7 +6,7 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status, Daemon};
+use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::{FlagsMessage, OutputMessage};
@@ -41,32 +41,12 @@ high = 5.0
 
 fn config_text(port: u16, client_id: &str) -> String {
     format!(
-        r#"{MODELS}
-[broker]
-host = "127.0.0.1"
-port = {port}
-client_id = "{client_id}"
-keep_alive_s = 5
-
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
-[output]
-topic = "brackenfield/clean/{{channel}}"
-flags_topic = "brackenfield/flags/{{channel}}"
-qos = 1
-
-[status]
-topic = "brackenfield/status/{client_id}"
-
-[timing]
-stale_after_s = 0
-"#
+        "{MODELS}{}",
+        plant_daemon_sections(
+            port,
+            client_id,
+            "flags_topic = \"brackenfield/flags/{channel}\""
+        )
     )
 }
 

@@ -6,7 +6,7 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status, Daemon};
+use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
 use gaugewise::config::Config;
 use gaugewise::history::Series;
 use gaugewise::replay::Replay;
@@ -30,32 +30,12 @@ min_samples = 100
 
 fn config_text(port: u16, client_id: &str) -> String {
     format!(
-        r#"{MODELS}
-[broker]
-host = "127.0.0.1"
-port = {port}
-client_id = "{client_id}"
-keep_alive_s = 5
-
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
-[output]
-topic = "brackenfield/clean/{{channel}}"
-params_topic = "brackenfield/params/{{channel}}"
-qos = 1
-
-[status]
-topic = "brackenfield/status/{client_id}"
-
-[timing]
-stale_after_s = 0
-"#
+        "{MODELS}{}",
+        plant_daemon_sections(
+            port,
+            client_id,
+            "params_topic = \"brackenfield/params/{channel}\""
+        )
     )
 }
 
@@ -191,12 +171,14 @@ interval = 1.0
 "#;
     let broker = TestBroker::embedded();
     let client_id = format!("gaugewise-test-learning-{}", std::process::id());
-    let config = config_text(broker.port(), &client_id)
-        .replace(MODELS, LEARN)
-        .replace(
-            "qos = 1\n\n[status]",
-            "flags_topic = \"brackenfield/flags/{channel}\"\nqos = 1\n\n[status]",
-        );
+    let config = format!(
+        "{LEARN}{}",
+        plant_daemon_sections(
+            broker.port(),
+            &client_id,
+            "flags_topic = \"brackenfield/flags/{channel}\"\nparams_topic = \"brackenfield/params/{channel}\""
+        )
+    );
     let watcher = TestClient::connect(broker.port());
     let outputs = watcher.subscribe("brackenfield/clean/#", QoS::AtLeastOnce);
     let params = watcher.subscribe("brackenfield/params/#", QoS::AtLeastOnce);

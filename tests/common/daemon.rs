@@ -102,3 +102,38 @@ pub fn epoch_now() -> f64 {
         .unwrap()
         .as_secs_f64()
 }
+
+/// The daemon sections the end-to-end tests share, after their own `[channels]`/`[flags]` text: the broker on
+/// loopback `port`, JSON samples `{"t":..,"v":..}` on `brackenfield/raw/<channel>` at QoS 1, outputs on
+/// `brackenfield/clean/<channel>` at QoS 1 (plus `output_extra`, e.g. a `flags_topic = ...` line), the status
+/// under the client id, and stale reports off so outputs can be counted exactly.
+pub fn plant_daemon_sections(port: u16, client_id: &str, output_extra: &str) -> String {
+    format!(
+        r#"
+[broker]
+host = "127.0.0.1"
+port = {port}
+client_id = "{client_id}"
+keep_alive_s = 5
+
+[[inputs]]
+topic = "brackenfield/raw/+"
+channel = "{{2}}"
+payload = "json"
+value = "/v"
+time = "/t"
+qos = 1
+
+[output]
+topic = "brackenfield/clean/{{channel}}"
+{output_extra}
+qos = 1
+
+[status]
+topic = "brackenfield/status/{client_id}"
+
+[timing]
+stale_after_s = 0
+"#
+    )
+}
