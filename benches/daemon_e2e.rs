@@ -14,9 +14,12 @@
 //! - b) latency at a fixed rate (20,000 samples/s over 1,000 channels for 10 s): p50/p99/max from the publish call
 //!   to the receipt of the output (HDR histogram), and samples lost (sent minus received);
 //! - c) memory: a fresh daemon gets one sample on each of 100,000 channels; its resident memory afterwards;
-//! - d) re-estimation (issue 5): the latency of case b at 20,000 samples/s over 1,000 channels, measured on a daemon
-//!   with re-estimation off, then on a daemon whose 1,000 channels refit their 2,000-sample windows every 60 s, then
-//!   off again; p99 on / off. Not in the default set (it takes about five minutes: windows take 100 s to fill).
+//! - d) re-estimation (issue 5): the latency of case b at 20,000 samples/s over 1,000 channels, measured on two
+//!   daemons at once that answer the same input messages, one whose 1,000 channels refit their 2,000-sample windows
+//!   every 60 s and one without re-estimation, so the machine's noise falls on both alike; p99 on / off, overall and
+//!   in the seconds with and without fits. Twice by default, the second time with the daemons' places swapped. Not
+//!   in the default set (it takes about eight minutes: windows take 100 s to fill). `GWBENCH_REEST_MODE=sequential`
+//!   runs the older design instead: off, on, off, one daemon at a time.
 //!
 //! The sample's time field carries its send time, read from one monotonic clock shifted to the epoch; the daemon
 //! copies it into its output's `time`, the relay leaves the payload as it is, so the receiver reads the latency
@@ -51,7 +54,12 @@ const DAEMON_IN: &str = "gwbench/in";
 /// not filter the other's samples.
 const OFF_IN: &str = "gwbench/in-off";
 const ON_IN: &str = "gwbench/in-on";
+const DAEMON_OUT: &str = "gwbench/out";
 const DAEMON_OUT_FILTER: &str = "gwbench/out/#";
+/// Case d, paired: both daemons subscribe to these inputs; each publishes under the output prefix of its slot.
+/// Slot 0 is the daemon started (and subscribed) first.
+const PAIR_IN: &str = "gwbench/in-pair";
+const PAIR_OUT: [&str; 2] = ["gwbench/out/slot0", "gwbench/out/slot1"];
 /// Inputs of the null relay, and the prefix it republishes under (`gwbench/relay/gwbench/rin/<channel>`).
 const RELAY_IN: &str = "gwbench/rin";
 const RELAY_PREFIX: &str = "gwbench/relay/";
@@ -122,11 +130,18 @@ struct Params {
     reest_window: usize,
     /// GWBENCH_REEST_EVERY_S=60: seconds between two re-estimations of one channel in case d.
     reest_every: f64,
-    /// GWBENCH_REEST_ON_S=120: measured seconds with re-estimation on, once the windows are full. A whole number of
-    /// periods (`reest_every`), so the measurement holds each channel's fits as often as a day of running would.
+    /// GWBENCH_REEST_ON_S=120: measured seconds with re-estimation on, once the windows are full (paired: of each
+    /// repetition, both daemons). A whole number of periods (`reest_every`), so the measurement holds each channel's
+    /// fits as often as a day of running would.
     reest_on_secs: Duration,
-    /// GWBENCH_REEST_OFF_S=30: measured seconds of each of the two runs with re-estimation off (before and after).
+    /// GWBENCH_REEST_OFF_S=30: measured seconds of each of the two runs with re-estimation off (sequential only).
     reest_off_secs: Duration,
+    /// GWBENCH_REEST_MODE=paired|sequential: case d runs the two daemons at once on the same inputs (paired), or
+    /// one after the other (off, on, off; the older design, kept for comparison).
+    reest_paired: bool,
+    /// GWBENCH_REEST_REPS=2: paired repetitions, each with fresh daemons; the second swaps the daemons' slots
+    /// (start order, output prefix), the third swaps them back, and so on.
+    reest_reps: usize,
 }
 
 impl Params {
@@ -154,7 +169,20 @@ impl Params {
             reest_every: env_or("GWBENCH_REEST_EVERY_S", 60.0)?,
             reest_on_secs: Duration::from_secs_f64(env_or("GWBENCH_REEST_ON_S", 120.0)?),
             reest_off_secs: Duration::from_secs_f64(env_or("GWBENCH_REEST_OFF_S", 30.0)?),
+            reest_paired: match env_or("GWBENCH_REEST_MODE", "paired".to_string())?.as_str() {
+                "paired" => true,
+                "sequential" => false,
+                m => {
+                    return Err(format!(
+                        "GWBENCH_REEST_MODE must be paired or sequential, not {m:?}"
+                    ))
+                }
+            },
+            reest_reps: env_or("GWBENCH_REEST_REPS", 2)?,
         };
+        if !(1..=20).contains(&p.reest_reps) {
+            return Err("GWBENCH_REEST_REPS must be 1..20".into());
+        }
         if !(20..=1_000_000).contains(&p.reest_window)
             || !p.reest_every.is_finite()
             || p.reest_every <= 0.0
@@ -288,7 +316,11 @@ fn run(p: &Params) -> Result<(), String> {
         case_memory(&ctx, p, &mut verdicts)?;
     }
     if p.case('d') {
-        case_reestimate(&ctx, p, &mut verdicts)?;
+        if p.reest_paired {
+            case_reestimate_paired(&ctx, p, &mut verdicts)?;
+        } else {
+            case_reestimate(&ctx, p, &mut verdicts)?;
+        }
     }
 
     println!("Targets (issues 3 and 5; informational: the bench never fails on a miss)");
@@ -519,6 +551,8 @@ fn case_throughput(
                     count: None,
                     signal: None,
                     at_measure: None,
+                    fanout: 1,
+                    watch: &[],
                 },
                 subject,
             );
@@ -616,6 +650,8 @@ fn case_latency(
                 count: None,
                 signal: None,
                 at_measure: None,
+                fanout: 1,
+                watch: &[],
             },
             subject,
         );
@@ -699,6 +735,8 @@ fn case_memory(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result<(),
             count: Some(p.mem_channels as u64),
             signal: None,
             at_measure: None,
+            fanout: 1,
+            watch: &[],
         },
         Subject::Daemon(daemon.pid()),
     );
@@ -963,6 +1001,8 @@ fn reest_segment(
             count: None,
             signal: Some(walk),
             at_measure: Some(&at_measure),
+            fanout: 1,
+            watch: &[],
         },
         Subject::Daemon(daemon.pid()),
     );
@@ -1008,23 +1048,11 @@ fn report_bursts(on: &Segment, p99_off: f64) {
         println!("   on: no re-estimation seen by the poller");
         return;
     }
-    let list: Vec<String> = on
-        .bursts
-        .iter()
-        .map(|&(a, b, n)| {
-            format!(
-                "{:+.1}..{:+.1} s: {n} fits, {:.1} ms each",
-                a - since,
-                b - since,
-                (b - a) * 1000.0 / n.max(1) as f64
-            )
-        })
-        .collect();
     println!(
         "   on: re-estimations finished in (seconds from the start of the measured window, negative while the \
          windows filled; to {} ms): {}",
         FIT_POLL.as_millis(),
-        list.join("; ")
+        burst_list(&on.bursts, since)
     );
     let seconds = &on.r.tally.seconds;
     let mut during: Option<Histogram<u64>> = None;
@@ -1071,6 +1099,43 @@ fn report_bursts(on: &Segment, p99_off: f64) {
             .map(|h| format!("{:.1}", h.value_at_quantile(0.99) as f64 / 1000.0))
             .collect();
         println!("     +{:>3} s  {}", row * 20, cells.join(" "));
+    }
+}
+
+/// The stretches in which fits finished (`FitWatch::finish`), in seconds from `since`.
+fn burst_list(bursts: &[(f64, f64, u64)], since: f64) -> String {
+    let list: Vec<String> = bursts
+        .iter()
+        .map(|&(a, b, n)| {
+            format!(
+                "{:+.1}..{:+.1} s: {n} fits, {:.1} ms each",
+                a - since,
+                b - since,
+                (b - a) * 1000.0 / n.max(1) as f64
+            )
+        })
+        .collect();
+    if list.is_empty() {
+        "none".into()
+    } else {
+        list.join("; ")
+    }
+}
+
+/// When the re-estimating daemon's channels fall due, in seconds from the start of the measured window (after
+/// `fill`). Every channel's first sample comes within one round of the channels (1 / per-channel rate), so all of
+/// them fall due at once: k * every_s after the start, i.e. k * every_s - fill into the measured window.
+fn due_times(p: &Params, fill: Duration) -> String {
+    let due: Vec<String> = (1..)
+        .map(|k| k as f64 * p.reest_every - fill.as_secs_f64())
+        .take_while(|&at| at < p.reest_on_secs.as_secs_f64())
+        .filter(|&at| at >= 0.0)
+        .map(|at| format!("+{at:.1} s"))
+        .collect();
+    if due.is_empty() {
+        "no time".into()
+    } else {
+        due.join(", ")
     }
 }
 
@@ -1153,6 +1218,7 @@ fn case_reestimate(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result
         max_channels,
         &Tuning {
             input: OFF_IN,
+            output: DAEMON_OUT,
             interval,
             reestimate: None,
             metrics_port: Some(off_port),
@@ -1207,6 +1273,7 @@ fn case_reestimate(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result
         max_channels,
         &Tuning {
             input: ON_IN,
+            output: DAEMON_OUT,
             interval,
             reestimate: Some((p.reest_window, p.reest_every)),
             metrics_port: Some(on_port),
@@ -1286,23 +1353,11 @@ fn case_reestimate(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result
     let p99_on = ms(&on.r.tally.latency, 0.99);
     let ratio = p99_on / p99_off;
     let limit_us = (1.5 * p99_off * 1000.0).round() as u64;
-    // Every channel's first sample comes within one round of the channels (1 / per_channel s), so all of them fall
-    // due at once: k * every_s after the start, i.e. k * every_s - fill into the measured window.
-    let bursts: Vec<String> = (1..)
-        .map(|k| k as f64 * p.reest_every - fill.as_secs_f64())
-        .take_while(|&at| at < p.reest_on_secs.as_secs_f64())
-        .filter(|&at| at >= 0.0)
-        .map(|at| format!("+{at:.1} s"))
-        .collect();
     println!(
         "   on: every channel falls due at once (their first samples came within {:.0} ms), at about {} of the \
          measured window",
         1000.0 / per_channel,
-        if bursts.is_empty() {
-            "no time".to_string()
-        } else {
-            bursts.join(", ")
-        }
+        due_times(p, fill)
     );
     for s in [&off1, &on, &off2] {
         let mut runs = slow_runs(&s.r.tally, limit_us);
@@ -1371,6 +1426,476 @@ fn case_reestimate(ctx: &Ctx, p: &Params, verdicts: &mut Vec<Verdict>) -> Result
     Ok(())
 }
 
+/// A quantile of a latency histogram (µs), in ms.
+fn ms_at(h: &Histogram<u64>, q: f64) -> f64 {
+    h.value_at_quantile(q) as f64 / 1000.0
+}
+
+/// One daemon of a paired repetition of case d.
+struct PairedDaemon {
+    on: bool,
+    daemon: Daemon,
+    metrics_port: u16,
+}
+
+/// What one paired repetition of case d measured. Per-slot arrays are indexed by slot (0: started first).
+struct PairedRep {
+    /// The slot whose daemon re-estimates; the other one does not.
+    on_slot: usize,
+    r: DriveResult,
+    /// Each daemon's counters over the measured window (None if its endpoint did not answer).
+    measured: [Option<Scrape>; 2],
+    /// Each daemon's counters since it started: the fits of the filling too.
+    total: [Option<Scrape>; 2],
+    /// When the re-estimating daemon's fits finished (`FitWatch`, clock times).
+    bursts: Vec<(f64, f64, u64)>,
+    /// Fits the other daemon's poller saw finish (0 unless something is wrong).
+    off_fits: u64,
+    on_log: String,
+}
+
+impl PairedRep {
+    /// The tallies of the re-estimating daemon and of the other, in that order.
+    fn lanes(&self) -> Result<(&Tally, &Tally), String> {
+        let lanes = &self.r.tally.lanes;
+        match (lanes.get(self.on_slot), lanes.get(1 - self.on_slot)) {
+            (Some(on), Some(off)) => Ok((on, off)),
+            _ => Err("the receiver kept no per-daemon tally".into()),
+        }
+    }
+}
+
+/// Which seconds of a tally (`Tally::seconds`, counted from `since`) overlap a stretch in which fits finished.
+fn fit_seconds(bursts: &[(f64, f64, u64)], since: f64, n: usize) -> Vec<bool> {
+    (0..n)
+        .map(|i| {
+            let (a, b) = (since + i as f64, since + i as f64 + 1.0);
+            bursts.iter().any(|&(x, y, _)| x < b && y > a)
+        })
+        .collect()
+}
+
+/// The seconds of paired repetitions compared one by one, the daemons' latencies having been measured on the same
+/// samples: split into the seconds in which the re-estimating daemon's fits finished and the others.
+#[derive(Default)]
+struct SecondsSplit {
+    /// [with fits, without][on, off]: the latencies of those seconds, merged.
+    hists: [[Option<Histogram<u64>>; 2]; 2],
+    /// [with fits, without]: seconds, and those whose p99 was higher on the re-estimating daemon, and lower.
+    seconds: [usize; 2],
+    on_higher: [usize; 2],
+    on_lower: [usize; 2],
+}
+
+impl SecondsSplit {
+    fn add(&mut self, rep: &PairedRep) -> Result<(), String> {
+        let (on, off) = rep.lanes()?;
+        let marks = fit_seconds(&rep.bursts, on.since, on.seconds.len());
+        for ((a, b), &busy) in on.seconds.iter().zip(&off.seconds).zip(&marks) {
+            // A second one daemon answered nothing of (it stalled, or the run ended) has no pair to compare.
+            if a.is_empty() || b.is_empty() {
+                continue;
+            }
+            let k = if busy { 0 } else { 1 };
+            for (acc, h) in self.hists[k].iter_mut().zip([a, b]) {
+                match acc {
+                    Some(acc) => acc.add(h).map_err(|e| format!("merging histograms: {e}"))?,
+                    None => *acc = Some(h.clone()),
+                }
+            }
+            self.seconds[k] += 1;
+            let (pa, pb) = (a.value_at_quantile(0.99), b.value_at_quantile(0.99));
+            if pa > pb {
+                self.on_higher[k] += 1;
+            } else if pa < pb {
+                self.on_lower[k] += 1;
+            }
+        }
+        Ok(())
+    }
+
+    /// One line each for the seconds with fits and those without, after `lead`.
+    fn print(&self, lead: &str) {
+        for (k, what) in [(0, "seconds with fits"), (1, "seconds without fits")] {
+            let [Some(on), Some(off)] = &self.hists[k] else {
+                println!("{lead}{what}: none");
+                continue;
+            };
+            println!(
+                "{lead}{what}: {} s; on p50 {:.3} p99 {:.3} p99.9 {:.3} max {:.1} ms; off p50 {:.3} p99 {:.3} \
+                 p99.9 {:.3} max {:.1} ms; p99 on / off {:.2}; p99 higher on in {} s, lower in {} s",
+                self.seconds[k],
+                ms_at(on, 0.5),
+                ms_at(on, 0.99),
+                ms_at(on, 0.999),
+                on.max() as f64 / 1000.0,
+                ms_at(off, 0.5),
+                ms_at(off, 0.99),
+                ms_at(off, 0.999),
+                off.max() as f64 / 1000.0,
+                ms_at(on, 0.99) / ms_at(off, 0.99),
+                self.on_higher[k],
+                self.on_lower[k],
+            );
+        }
+    }
+}
+
+/// Case d, paired: two daemons at once on the same inputs, one re-estimating and one not, so every sample's
+/// latency is measured through both and the machine's noise falls on both alike. Each repetition starts fresh
+/// daemons, fills their windows (not measured) and measures `reest_on_secs`; each repetition after the first swaps
+/// the daemons' slots (start order, and with it the order of the broker's subscriptions, client id and output
+/// prefix).
+fn case_reestimate_paired(
+    ctx: &Ctx,
+    p: &Params,
+    verdicts: &mut Vec<Verdict>,
+) -> Result<(), String> {
+    let per_channel = p.rate / p.channels as f64;
+    let interval = 1.0 / per_channel;
+    // The windows are full after `window` samples of each channel; a little more so that every channel's is.
+    let fill = Duration::from_secs_f64(p.reest_window as f64 / per_channel + 2.0);
+    let periods = p.reest_on_secs.as_secs_f64() / p.reest_every;
+    let minutes =
+        p.reest_reps as f64 * (fill.as_secs_f64() + p.reest_on_secs.as_secs_f64() + 8.0) / 60.0;
+    println!(
+        "d) re-estimation, paired: two daemons at once on the same {} input topics, {:.0} samples/s ({per_channel:.1} \
+         per channel per s, interval {interval} s), QoS 0, publish call to output received; {} repetition(s), \
+         about {minutes:.1} min",
+        p.channels, p.rate, p.reest_reps
+    );
+    println!(
+        "   the same configuration for both, except [reestimate] on one: every channel refits its {}-sample window \
+         every {} s of its own time (= wall time: the payload time is the send time)",
+        p.reest_window, p.reest_every
+    );
+    println!(
+        "   each repetition: fresh daemons; {:.0} s while the windows fill (not measured), then {:.0} s measured \
+         ({periods:.2} periods); fits due at about {} of the measured window",
+        fill.as_secs_f64(),
+        p.reest_on_secs.as_secs_f64(),
+        due_times(p, fill)
+    );
+    if (periods - periods.round()).abs() > 1e-6 {
+        println!(
+            "   note: the measured time is not a whole number of periods, so the fits weigh more or less than \
+             they do in steady running"
+        );
+    }
+    println!(
+        "   slots: slot 0 is started (and subscribes) first and publishes on {}/, slot 1 on {}/; the re-estimating \
+         daemon takes slot 0 in odd repetitions, slot 1 in even ones",
+        PAIR_OUT[0], PAIR_OUT[1]
+    );
+    println!(
+        "   signal: per channel a random walk plus noise, observation variance 0.5/1/2/4 x and level variance 1 or \
+         0.25 x the configured {DAEMON_OBS_VAR} / {DAEMON_LEVEL_VAR} per interval (the same in every repetition)"
+    );
+    println!(
+        "   {:<3} {:<4} {:>4} {:>8} {:>8} {:>5} {:>7} {:>7} {:>8} {:>7} {:>10} {:>6} {:>9} {:>11} {:>7}",
+        "rep",
+        "role",
+        "slot",
+        "sent",
+        "outputs",
+        "lost",
+        "p50 ms",
+        "p99 ms",
+        "p99.9 ms",
+        "max ms",
+        "CPU µs/out",
+        "CPU %",
+        "fits a/r",
+        "all fits a/r",
+        "not ok"
+    );
+    ctx.receiver.batch_reads(false);
+    ctx.receiver.per_second(true);
+    let mut reps = Vec::with_capacity(p.reest_reps);
+    for rep in 0..p.reest_reps {
+        let x = paired_rep(ctx, p, rep, fill, interval)?;
+        print_paired_rep(ctx, rep, &x)?;
+        reps.push(x);
+    }
+    ctx.receiver.per_second(false);
+    println!(
+        "   (latency counts the measured seconds only; sent, outputs and lost count the filling too. CPU µs/out and CPU %: \
+         the daemon process, whole. fits a/r: re-estimations accepted / refused in the measured seconds; all fits: \
+         since the daemon started. not ok: outputs whose status is not \"ok\", mostly withheld outliers of the \
+         noisier channels)"
+    );
+
+    let mut on_all: Option<Histogram<u64>> = None;
+    let mut off_all: Option<Histogram<u64>> = None;
+    let mut split = SecondsSplit::default();
+    let mut per_rep = Vec::new();
+    for x in &reps {
+        let (on, off) = x.lanes()?;
+        for (acc, h) in [(&mut on_all, &on.latency), (&mut off_all, &off.latency)] {
+            match acc {
+                Some(acc) => acc.add(h).map_err(|e| format!("merging histograms: {e}"))?,
+                None => *acc = Some(h.clone()),
+            }
+        }
+        split.add(x)?;
+        per_rep.push(format!(
+            "{:.2}",
+            ms_at(&on.latency, 0.99) / ms_at(&off.latency, 0.99)
+        ));
+    }
+    let (Some(on_all), Some(off_all)) = (on_all, off_all) else {
+        return Err("case d ran no repetition".into());
+    };
+    let (p99_on, p99_off) = (ms_at(&on_all, 0.99), ms_at(&off_all, 0.99));
+    let ratio = p99_on / p99_off;
+    let count = |f: fn(&Scrape) -> u64, total: bool| -> u64 {
+        reps.iter()
+            .filter_map(|x| {
+                let s = if total { &x.total } else { &x.measured };
+                s[x.on_slot].as_ref().map(f)
+            })
+            .sum()
+    };
+    let (accepted, refused) = (count(|s| s.accepted, false), count(|s| s.refused, false));
+    let (all_accepted, all_refused) = (count(|s| s.accepted, true), count(|s| s.refused, true));
+    let lost: u64 = reps.iter().map(|x| x.r.lost()).sum();
+    println!(
+        "   all {} repetition(s): on p50 {:.3} p99 {p99_on:.3} p99.9 {:.3} max {:.1} ms; off p50 {:.3} p99 \
+         {p99_off:.3} p99.9 {:.3} max {:.1} ms; p99 on / off {ratio:.2} (per repetition: {}); lost {lost}",
+        reps.len(),
+        ms_at(&on_all, 0.5),
+        ms_at(&on_all, 0.999),
+        on_all.max() as f64 / 1000.0,
+        ms_at(&off_all, 0.5),
+        ms_at(&off_all, 0.999),
+        off_all.max() as f64 / 1000.0,
+        per_rep.join(", ")
+    );
+    split.print("   all repetitions, ");
+    println!(
+        "   re-estimations: {} in the measured seconds ({accepted} accepted, {refused} refused), {} in all \
+         ({all_accepted} accepted, {all_refused} refused; the filling's included); on the daemon without \
+         [reestimate]: {}",
+        accepted + refused,
+        all_accepted + all_refused,
+        reps.iter().map(|x| x.off_fits).sum::<u64>()
+    );
+    println!();
+
+    let fits = accepted + refused;
+    let expected = p.channels as u64 * periods.floor() as u64 * reps.len() as u64;
+    let scraped = reps.iter().all(|x| x.measured[x.on_slot].is_some());
+    verdicts.push(Verdict {
+        what: format!(
+            "d) re-estimations in {} x {:.0} s measured (accepted {accepted})",
+            reps.len(),
+            p.reest_on_secs.as_secs_f64()
+        ),
+        measured: fits.to_string(),
+        target: format!(">= {expected}"),
+        pass: fits >= expected && scraped,
+    });
+    verdicts.push(Verdict {
+        what: format!("d) p99 on / off, paired ({p99_on:.2} / {p99_off:.2} ms)"),
+        measured: format!("{ratio:.2}"),
+        target: "<= 1.5".into(),
+        pass: ratio <= 1.5,
+    });
+    Ok(())
+}
+
+/// One paired repetition: starts both daemons, drives them through the filling and the measured window, stops them.
+fn paired_rep(
+    ctx: &Ctx,
+    p: &Params,
+    rep: usize,
+    fill: Duration,
+    interval: f64,
+) -> Result<PairedRep, String> {
+    let on_slot = rep % 2;
+    let max_channels = p.channels.max(1000);
+    let mut daemons: Vec<PairedDaemon> = Vec::with_capacity(2);
+    for (slot, output) in PAIR_OUT.into_iter().enumerate() {
+        let on = slot == on_slot;
+        let metrics_port = broker::free_port();
+        let daemon = Daemon::start_tuned(
+            ctx,
+            QoS::AtMostOnce,
+            max_channels,
+            &Tuning {
+                input: PAIR_IN,
+                output,
+                interval,
+                reestimate: on.then_some((p.reest_window, p.reest_every)),
+                metrics_port: Some(metrics_port),
+            },
+        )?;
+        daemons.push(PairedDaemon {
+            on,
+            daemon,
+            metrics_port,
+        });
+    }
+    let ports = [daemons[0].metrics_port, daemons[1].metrics_port];
+    let pids = [daemons[0].daemon.pid(), daemons[1].daemon.pid()];
+    ctx.receiver.set_lanes(&PAIR_OUT.map(|o| format!("{o}/")));
+    // Both daemons are polled alike, so the pollers' small cost falls on both.
+    let watches = ports.map(|port| FitWatch::start(port, ctx.clock));
+    let before = RefCell::new([None, None]);
+    let at_measure = || *before.borrow_mut() = ports.map(scrape);
+    let topics = topics(PAIR_IN, p.channels);
+    // The same values in every repetition.
+    let walk = RefCell::new(Walk::new(p.channels, WALK_SEED));
+    let r = drive(
+        ctx,
+        &Drive {
+            topics: &topics,
+            pace: Pace::Rate(p.rate),
+            qos: QoS::AtMostOnce,
+            warmup: fill,
+            measure: Some(p.reest_on_secs),
+            count: None,
+            signal: Some(&walk),
+            at_measure: Some(&at_measure),
+            fanout: 2,
+            watch: &pids,
+        },
+        Subject::Daemon(pids[0]),
+    );
+    let after = ports.map(scrape);
+    let before = before.into_inner();
+    let measured = [0, 1].map(|i| {
+        before[i]
+            .as_ref()
+            .zip(after[i].as_ref())
+            .map(|(b, a)| a.since(b))
+    });
+    let [w0, w1] = watches;
+    let mut bursts = [w0.finish(), w1.finish()];
+    ctx.receiver.set_lanes(&[]);
+    let mut on_log = String::new();
+    for d in daemons {
+        let log = d.daemon.stop();
+        if d.on {
+            on_log = log;
+        }
+    }
+    let off_fits = bursts[1 - on_slot].iter().map(|b| b.2).sum();
+    Ok(PairedRep {
+        on_slot,
+        r,
+        measured,
+        total: after,
+        bursts: std::mem::take(&mut bursts[on_slot]),
+        off_fits,
+        on_log,
+    })
+}
+
+/// The table rows of one paired repetition, then where its latency went.
+fn print_paired_rep(ctx: &Ctx, rep: usize, x: &PairedRep) -> Result<(), String> {
+    let w = &x.r.window;
+    let (on, off) = x.lanes()?;
+    let fits = |s: &Option<Scrape>| {
+        s.as_ref()
+            .map_or("n/a".into(), |m| format!("{}/{}", m.accepted, m.refused))
+    };
+    for (slot, t) in [(x.on_slot, on), (1 - x.on_slot, off)] {
+        let h = &t.latency;
+        let ticks = w.watched_ticks.get(slot).copied().unwrap_or(0);
+        let outputs = w.lane_outputs.get(slot).copied().unwrap_or(0);
+        println!(
+            "   {:<3} {:<4} {:>4} {:>8} {:>8} {:>5} {:>7.3} {:>7.3} {:>8.3} {:>7.1} {:>10.2} {:>6.0} {:>9} {:>11} {:>7}",
+            rep + 1,
+            if slot == x.on_slot { "on" } else { "off" },
+            slot,
+            x.r.sent,
+            x.r.lane_received.get(slot).copied().unwrap_or(0),
+            x.r.lane_lost(slot),
+            ms_at(h, 0.5),
+            ms_at(h, 0.99),
+            ms_at(h, 0.999),
+            h.max() as f64 / 1000.0,
+            ticks as f64 / ctx.ticks_per_s * 1e6 / outputs.max(1) as f64,
+            w.share(ticks, ctx.ticks_per_s),
+            fits(&x.measured[slot]),
+            fits(&x.total[slot]),
+            t.not_ok,
+        );
+    }
+    let pct = |t: u64| w.share(t, ctx.ticks_per_s);
+    let daemons: u64 = w.watched_ticks.iter().sum();
+    let ours = daemons + w.bench_ticks + w.broker_ticks.unwrap_or(0);
+    println!(
+        "   {:<3} sent {:.0}/s; CPU, percent of one core: both daemons {:.0}, broker {}, bench {:.0}, other {:.0}; \
+         p99 on / off {:.2}",
+        "",
+        w.sent as f64 / w.secs.max(1e-9),
+        pct(daemons),
+        w.broker_ticks
+            .map_or("n/a".into(), |t| format!("{:.0}", pct(t))),
+        pct(w.bench_ticks),
+        pct(w.machine_ticks.saturating_sub(ours)),
+        ms_at(&on.latency, 0.99) / ms_at(&off.latency, 0.99),
+    );
+    println!(
+        "   {:<3} fits finished (s from the start of the measured window, negative while the windows filled; to {} \
+         ms): {}",
+        "",
+        FIT_POLL.as_millis(),
+        burst_list(&x.bursts, on.since)
+    );
+    let mut split = SecondsSplit::default();
+    split.add(x)?;
+    split.print(&format!("   {:<3} ", ""));
+    let internal: Vec<String> = [(x.on_slot, "on"), (1 - x.on_slot, "off")]
+        .iter()
+        .filter_map(|&(slot, name)| {
+            let m = x.measured[slot].as_ref()?;
+            Some(format!(
+                "{name} p99 <= {} ms, over 1 ms {:.4}%, over 5 ms {:.4}%",
+                m.quantile_bound(0.99) * 1000.0,
+                m.share_over(0.001) * 100.0,
+                m.share_over(0.005) * 100.0
+            ))
+        })
+        .collect();
+    if !internal.is_empty() {
+        println!(
+            "   {:<3} the daemons' own latency (receipt to output handed to the client, metrics histogram): {}",
+            "",
+            internal.join("; ")
+        );
+    }
+    println!(
+        "   {:<3} p99 per second (ms), on above off, 20 s a row:",
+        ""
+    );
+    for (row, (a, b)) in on
+        .seconds
+        .chunks(20)
+        .zip(off.seconds.chunks(20))
+        .enumerate()
+    {
+        let cells = |c: &[Histogram<u64>]| {
+            c.iter()
+                .map(|h| format!("{:>4.1}", ms_at(h, 0.99)))
+                .collect::<Vec<_>>()
+                .join(" ")
+        };
+        println!("     +{:>3} s on   {}", row * 20, cells(a));
+        println!("            off  {}", cells(b));
+    }
+    if let Some(line) = x.on_log.lines().rev().find(|l| l.contains("reestimated=")) {
+        println!(
+            "   {:<3} on daemon, last counter line: {}",
+            "",
+            plain(line).trim()
+        );
+    }
+    Ok(())
+}
+
 /// Seconds since the Unix epoch, read from a monotonic clock: the wall clock at the start plus the elapsed time.
 /// Sample times are strictly increasing per channel (the daemon drops a sample older than the last), and the
 /// receiver's latency is `now - time` on the same clock. An f64 near 1.8e9 s resolves 0.24 µs.
@@ -1409,6 +1934,8 @@ struct Tally {
     per_second: bool,
     /// The latencies of the samples sent in each second after `since` (2 significant digits), when `per_second`.
     seconds: Vec<Histogram<u64>>,
+    /// The same, per lane (`Receiver::set_lanes`), in the lanes' order; filled by `Receiver::take`.
+    lanes: Vec<Tally>,
 }
 
 /// Width of a slot of `Tally::slots`, in seconds.
@@ -1425,6 +1952,7 @@ impl Tally {
             slots: Vec::new(),
             per_second: false,
             seconds: Vec::new(),
+            lanes: Vec::new(),
         }
     }
 
@@ -1647,9 +2175,20 @@ struct Receiver {
     /// See `Receiver::per_second`.
     per_second: AtomicBool,
     tally: Arc<Mutex<Tally>>,
+    /// See `Receiver::set_lanes`. Locked after `tally`, never before it.
+    lanes: Arc<Mutex<Lanes>>,
     status: mpsc::Receiver<(String, String)>,
     stop: Arc<AtomicBool>,
     thread: Option<JoinHandle<()>>,
+}
+
+/// Outputs told apart by topic prefix, so that two daemons answering the same inputs are measured side by side.
+#[derive(Default)]
+struct Lanes {
+    prefixes: Vec<String>,
+    /// Outputs received per lane since `set_lanes`.
+    received: Vec<u64>,
+    tallies: Vec<Tally>,
 }
 
 impl Receiver {
@@ -1673,14 +2212,16 @@ impl Receiver {
             .map_err(|e| format!("receiver: {e}"))?;
         let received = Arc::new(AtomicU64::new(0));
         let tally = Arc::new(Mutex::new(Tally::new(clock.now())));
+        let lanes = Arc::new(Mutex::new(Lanes::default()));
         let (status_tx, status) = mpsc::channel();
         let stop = Arc::new(AtomicBool::new(false));
         let subscribed = Arc::new(AtomicBool::new(false));
         let batch = Arc::new(AtomicBool::new(false));
         let thread = {
-            let (received, tally, stop, subscribed, batch) = (
+            let (received, tally, lanes, stop, subscribed, batch) = (
                 received.clone(),
                 tally.clone(),
+                lanes.clone(),
                 stop.clone(),
                 subscribed.clone(),
                 batch.clone(),
@@ -1693,6 +2234,7 @@ impl Receiver {
                         clock,
                         &received,
                         &tally,
+                        &lanes,
                         &status_tx,
                         &stop,
                         &subscribed,
@@ -1707,6 +2249,7 @@ impl Receiver {
             batch,
             per_second: AtomicBool::new(false),
             tally,
+            lanes,
             status,
             stop,
             thread: Some(thread),
@@ -1736,9 +2279,48 @@ impl Receiver {
     }
 
     fn take(&self) -> Tally {
-        let mut fresh = Tally::new(self.clock.now());
-        fresh.per_second = self.per_second.load(Ordering::Relaxed);
-        std::mem::replace(&mut *self.tally.lock().expect("tally lock"), fresh)
+        let now = self.clock.now();
+        let per_second = self.per_second.load(Ordering::Relaxed);
+        let fresh = || {
+            let mut t = Tally::new(now);
+            t.per_second = per_second;
+            t
+        };
+        let mut tally = self.tally.lock().expect("tally lock");
+        let mut lanes = self.lanes.lock().expect("lanes lock");
+        let mut taken = std::mem::replace(&mut *tally, fresh());
+        taken.lanes = lanes
+            .tallies
+            .iter_mut()
+            .map(|t| std::mem::replace(t, fresh()))
+            .collect();
+        taken
+    }
+
+    /// From now on, outputs whose topic starts with one of `prefixes` are also tallied for that lane
+    /// (`Tally::lanes`) and counted (`lane_received`). An empty list ends it.
+    fn set_lanes(&self, prefixes: &[String]) {
+        let _tally = self.tally.lock().expect("tally lock");
+        let mut lanes = self.lanes.lock().expect("lanes lock");
+        let per_second = self.per_second.load(Ordering::Relaxed);
+        let now = self.clock.now();
+        *lanes = Lanes {
+            prefixes: prefixes.to_vec(),
+            received: vec![0; prefixes.len()],
+            tallies: prefixes
+                .iter()
+                .map(|_| {
+                    let mut t = Tally::new(now);
+                    t.per_second = per_second;
+                    t
+                })
+                .collect(),
+        };
+    }
+
+    /// Outputs received per lane since `set_lanes`.
+    fn lane_received(&self) -> Vec<u64> {
+        self.lanes.lock().expect("lanes lock").received.clone()
     }
 
     /// Waits for a status message on `topic` whose payload contains `word`.
@@ -1771,6 +2353,7 @@ fn receive_loop(
     clock: Clock,
     received: &AtomicU64,
     tally: &Mutex<Tally>,
+    lanes: &Mutex<Lanes>,
     status: &mpsc::Sender<(String, String)>,
     stop: &AtomicBool,
     subscribed: &AtomicBool,
@@ -1822,6 +2405,7 @@ fn receive_loop(
         let now = clock.now();
         let mut count = 0;
         let mut t = tally.lock().expect("tally lock");
+        let mut l = lanes.lock().expect("lanes lock");
         let parsed = raw::parse(&buf[..filled], |packet| match packet {
             raw::Incoming::Publish {
                 topic,
@@ -1837,17 +2421,36 @@ fn receive_loop(
                     return;
                 }
                 count += 1;
-                match payload_time(payload) {
-                    Some(sent) => t.record(sent, now),
-                    None => t.unreadable += 1,
-                }
-                if topic.starts_with("gwbench/out/") && !contains(payload, b"\"status\":\"ok\"") {
-                    t.not_ok += 1;
+                let sent = payload_time(payload);
+                let not_ok =
+                    topic.starts_with("gwbench/out/") && !contains(payload, b"\"status\":\"ok\"");
+                let note = |t: &mut Tally| {
+                    match sent {
+                        Some(sent) => t.record(sent, now),
+                        None => t.unreadable += 1,
+                    }
+                    if not_ok {
+                        t.not_ok += 1;
+                    }
+                };
+                note(&mut t);
+                if let Some(i) = l
+                    .prefixes
+                    .iter()
+                    .position(|p| topic.starts_with(p.as_str()))
+                {
+                    if let Some(n) = l.received.get_mut(i) {
+                        *n += 1;
+                    }
+                    if let Some(lane) = l.tallies.get_mut(i) {
+                        note(lane);
+                    }
                 }
             }
             raw::Incoming::SubAck => subscribed.store(true, Ordering::Relaxed),
             raw::Incoming::Other => {}
         });
+        drop(l);
         drop(t);
         received.fetch_add(count, Ordering::Relaxed);
         match parsed {
@@ -2032,6 +2635,8 @@ struct Daemon {
 struct Tuning {
     /// The input topics are `<input>/<channel>`.
     input: &'static str,
+    /// The output topics are `<output>/<channel>`; under `gwbench/out/`, where the receiver listens.
+    output: &'static str,
     /// The channels' nominal sample interval, s (the variances are per interval).
     interval: f64,
     /// Re-estimation on with this window (samples) and period (s); None: off.
@@ -2044,6 +2649,7 @@ impl Default for Tuning {
     fn default() -> Self {
         Tuning {
             input: DAEMON_IN,
+            output: DAEMON_OUT,
             interval: 1.0,
             reestimate: None,
             metrics_port: None,
@@ -2089,7 +2695,7 @@ time = "/t"
 time_format = "epoch_s"
 
 [output]
-topic = "gwbench/out/{{channel}}"
+topic = "{output}/{{channel}}"
 qos = {q}
 
 [status]
@@ -2110,6 +2716,7 @@ level_var = {DAEMON_LEVEL_VAR:?}
             port = ctx.port,
             interval = tuning.interval,
             input = tuning.input,
+            output = tuning.output,
         );
         if let Some((window, every_s)) = tuning.reestimate {
             let _ = write!(
@@ -2250,6 +2857,10 @@ struct Drive<'a> {
     signal: Option<&'a RefCell<Walk>>,
     /// Called once, as the measured window begins (case d reads the daemon's counters there).
     at_measure: Option<&'a dyn Fn()>,
+    /// Outputs per sample: 1, or 2 when two daemons answer the same inputs (case d, paired).
+    fanout: u64,
+    /// Processes whose CPU time the window reports one by one (`Window::watched_ticks`), besides the subject.
+    watch: &'a [u32],
 }
 
 /// CPU and output counts over the measured window of a drive.
@@ -2267,6 +2878,10 @@ struct Window {
     /// Every CPU of the machine, busy (steal included).
     machine_ticks: u64,
     subject_in_bench: bool,
+    /// CPU ticks of each of `Drive::watch`, in its order.
+    watched_ticks: Vec<u64>,
+    /// Outputs received per lane (`Receiver::set_lanes`).
+    lane_outputs: Vec<u64>,
 }
 
 impl Window {
@@ -2336,11 +2951,21 @@ struct DriveResult {
     tally: Tally,
     /// Times the closed loop gave up waiting for outstanding outputs.
     stalls: u64,
+    /// `Drive::fanout`.
+    fanout: u64,
+    /// Over the whole drive, per lane (`Receiver::set_lanes`).
+    lane_received: Vec<u64>,
 }
 
 impl DriveResult {
     fn lost(&self) -> u64 {
-        self.sent.saturating_sub(self.received)
+        (self.sent * self.fanout).saturating_sub(self.received)
+    }
+
+    /// Samples lane `i` did not answer.
+    fn lane_lost(&self, i: usize) -> u64 {
+        self.sent
+            .saturating_sub(self.lane_received.get(i).copied().unwrap_or(0))
     }
 }
 
@@ -2353,12 +2978,15 @@ struct Probe {
     broker: Option<u64>,
     bench: u64,
     machine: u64,
+    watched: Vec<u64>,
+    lanes: Vec<u64>,
 }
 
 /// Publishes samples as `drive` says, waits for the outputs, and measures the window after the warm-up.
 fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
     let rx = ctx.receiver;
     let base = rx.received();
+    let lane_base = rx.lane_received();
     let probe = |sent: u64| Probe {
         at: Instant::now(),
         sent,
@@ -2370,6 +2998,12 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
             .and_then(|pid| stat_ticks(&format!("/proc/{pid}/stat"))),
         bench: stat_ticks("/proc/self/stat").unwrap_or(0),
         machine: machine_ticks().unwrap_or(0),
+        watched: d
+            .watch
+            .iter()
+            .map(|pid| stat_ticks(&format!("/proc/{pid}/stat")).unwrap_or(0))
+            .collect(),
+        lanes: rx.lane_received(),
     };
     let _ = rx.take();
     let start = Instant::now();
@@ -2456,7 +3090,7 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
     let drain_end = Instant::now() + DRAIN_MAX;
     let mut seen = rx.received();
     let mut quiet_since = Instant::now();
-    while rx.received() - base < sent && Instant::now() < drain_end {
+    while rx.received() - base < sent * d.fanout && Instant::now() < drain_end {
         thread::sleep(Duration::from_millis(10));
         let now_seen = rx.received();
         if now_seen != seen {
@@ -2483,10 +3117,23 @@ fn drive(ctx: &Ctx, d: &Drive, subject: Subject) -> DriveResult {
             bench_ticks: last.bench.saturating_sub(first.bench),
             machine_ticks: last.machine.saturating_sub(first.machine),
             subject_in_bench: matches!(subject, Subject::Thread(_)),
+            watched_ticks: differences(&last.watched, &first.watched),
+            lane_outputs: differences(&last.lanes, &first.lanes),
         },
         tally,
         stalls,
+        fanout: d.fanout,
+        lane_received: differences(&rx.lane_received(), &lane_base),
     }
+}
+
+/// `later - earlier`, element by element (counters read twice).
+fn differences(later: &[u64], earlier: &[u64]) -> Vec<u64> {
+    later
+        .iter()
+        .zip(earlier)
+        .map(|(l, e)| l.saturating_sub(*e))
+        .collect()
 }
 
 fn topics(prefix: &str, n: usize) -> Vec<String> {

@@ -365,6 +365,24 @@ impl Store {
         }
     }
 
+    /// Reads checkpoint `name` without changing anything on disk (no move aside, no sweep of temporary files),
+    /// for inspection while the owner keeps saving. `Ok(None)`: there is none; `Ok(Some(Err))`: it is there but
+    /// corrupt or incompatible.
+    pub fn inspect<T: DeserializeOwned>(
+        &self,
+        name: &str,
+    ) -> Result<Option<Result<T, Problem>>, CheckpointError> {
+        let path = self.path(name)?;
+        match read_bounded(&path, HEADER_LEN as u64 + self.max_payload) {
+            Ok(Some(bytes)) => Ok(Some(decode::<T>(&bytes, self.schema))),
+            Ok(None) => Ok(Some(Err(Problem::Corrupt(Corruption::TooLarge {
+                limit: self.max_payload,
+            })))),
+            Err(e) if e.kind() == io::ErrorKind::NotFound => Ok(None),
+            Err(e) => Err(CheckpointError::reading("read", &path, e)),
+        }
+    }
+
     /// Deletes leftovers `.NAME.tmp-*` of interrupted saves and returns how many there were.
     pub fn remove_stray_temps(&self, name: &str) -> Result<usize, CheckpointError> {
         check_name(name)?;

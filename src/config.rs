@@ -133,6 +133,8 @@ pub struct Config {
     pub metrics: Option<MetricsConfig>,
     /// `[instance]`: which share of the channels this daemon handles (default: all).
     pub instance: InstanceConfig,
+    /// `[state]`: where channel state is kept between runs.
+    pub state: daemon::StateConfig,
     /// The name errors use for the file (the path as given).
     pub source: String,
     /// The environment variables that were applied, in the order they were applied.
@@ -419,6 +421,11 @@ impl Config {
                 .map(|m| daemon::metrics(m, ctx))
                 .transpose()?,
             instance: daemon::instance(&raw.instance.unwrap_or_default(), ctx)?,
+            state: daemon::state(
+                &raw.state.unwrap_or_default(),
+                ctx,
+                std::env::var("STATE_DIRECTORY").ok().as_deref(),
+            )?,
             source: source.to_string(),
             env: Vec::new(),
             base: None,
@@ -690,6 +697,7 @@ struct RawConfig {
     limits: Option<daemon::RawLimits>,
     metrics: Option<daemon::RawMetrics>,
     instance: Option<daemon::RawInstance>,
+    state: Option<daemon::RawState>,
     flags: Option<flags::RawFlags>,
     reestimate: Option<learn::RawLearn>,
 }
@@ -886,7 +894,9 @@ fn model_error(e: ModelError, path: &str, file: &str) -> ConfigError {
             "ar",
             format!("{ar:?} is not stationary: the process would drift without bound"),
         ),
-        e @ (ModelError::Order { .. } | ModelError::UnknownKind(_)) => ("model", e.to_string()),
+        e @ (ModelError::Order { .. }
+        | ModelError::UnknownKind(_)
+        | ModelError::ValueCount { .. }) => ("model", e.to_string()),
     };
     ConfigError::Invalid {
         file: file.to_string(),

@@ -36,7 +36,7 @@
 //! Every flag carries a severity.
 
 use crate::filter::{Gate, Step, StepKind};
-use serde::{Serialize, Serializer};
+use serde::{Deserialize, Serialize, Serializer};
 use statrs::distribution::{ChiSquared, ContinuousCDF, Normal};
 use std::fmt;
 use thiserror::Error;
@@ -654,14 +654,14 @@ impl FlagDesign {
 }
 
 /// Raise and clear conditions of one detector at one sample.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 struct Condition {
     raise: bool,
     clear: bool,
 }
 
 /// One flag's hysteresis state.
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 struct Alarm {
     active: bool,
     /// Since when the raise (while inactive) or clear (while active) condition has held.
@@ -734,7 +734,15 @@ pub enum Admit {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Detectors {
     settings: FlagSettings,
+    m: DetectorMemory,
+}
+
+/// Everything the detectors remember between samples: what a checkpoint saves. The settings are not part of it;
+/// they come from the configuration at restore time.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DetectorMemory {
     alarms: [Alarm; 7],
+    #[serde(with = "flag_bits")]
     active: FlagSet,
     // Outlier run (robust update): sign of the current run of outliers, its length, and the sum of its z clipped
     // at the spike limit, fed to the CUSUM if the run turns out to be a level shift.
@@ -758,26 +766,62 @@ pub struct Detectors {
     forecast_std: f64,
 }
 
+/// A [`FlagSet`] in a checkpoint: its bits (the JSON form, a list of names, is for people).
+mod flag_bits {
+    use super::FlagSet;
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(set: &FlagSet, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_u8(set.0)
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<FlagSet, D::Error> {
+        let bits = u8::deserialize(d)?;
+        if bits >> 7 != 0 {
+            return Err(serde::de::Error::custom(format!(
+                "flag bits {bits:#x}: no such flag"
+            )));
+        }
+        Ok(FlagSet(bits))
+    }
+}
+
 impl Detectors {
     pub fn new(settings: FlagSettings) -> Self {
         Detectors {
             settings,
-            alarms: [Alarm::IDLE; 7],
-            active: FlagSet::EMPTY,
-            run_sign: 0.0,
-            run_len: 0,
-            run_sum: 0.0,
-            last_z: 0.0,
-            block_sum: 0.0,
-            block_len: 0,
-            noise: Condition::default(),
-            noise_mean: f64::NAN,
-            s_hi: 0.0,
-            s_lo: 0.0,
-            anchor: f64::NAN,
-            flat_len: 0,
-            forecast_std: f64::NAN,
+            m: DetectorMemory {
+                alarms: [Alarm::IDLE; 7],
+                active: FlagSet::EMPTY,
+                run_sign: 0.0,
+                run_len: 0,
+                run_sum: 0.0,
+                last_z: 0.0,
+                block_sum: 0.0,
+                block_len: 0,
+                noise: Condition::default(),
+                noise_mean: f64::NAN,
+                s_hi: 0.0,
+                s_lo: 0.0,
+                anchor: f64::NAN,
+                flat_len: 0,
+                forecast_std: f64::NAN,
+            },
         }
+    }
+
+    /// Detectors that carry on from a saved memory under `settings` (a restart: the caller checks that the
+    /// settings are the ones the memory was built under).
+    pub fn resume(settings: FlagSettings, memory: DetectorMemory) -> Self {
+        Detectors {
+            settings,
+            m: memory,
+        }
+    }
+
+    /// What the detectors remember between samples, for a checkpoint.
+    pub fn memory(&self) -> &DetectorMemory {
+        &self.m
     }
 
     pub fn settings(&self) -> &FlagSettings {
@@ -785,22 +829,22 @@ impl Detectors {
     }
 
     pub fn active(&self) -> FlagSet {
-        self.active
+        self.m.active
     }
 
     /// When `kind` was last raised (NaN if never); meaningful while it is active.
     pub fn since(&self, kind: FlagKind) -> f64 {
-        self.alarms[kind.index()].since
+        self.m.alarms[kind.index()].since
     }
 
     /// The larger CUSUM sum, in sigmas (for reports and tests).
     pub fn cusum(&self) -> f64 {
-        self.s_hi.max(self.s_lo)
+        self.m.s_hi.max(self.m.s_lo)
     }
 
     /// Mean of z^2 over the last completed noise block (NaN before the first).
     pub fn noise_mean(&self) -> f64 {
-        self.noise_mean
+        self.m.noise_mean
     }
 
     fn in_range(&self, v: f64) -> bool {
@@ -812,7 +856,7 @@ impl Detectors {
         let s = &self.settings;
         if let Some(v) = value.filter(|v| !v.is_nan()) {
             let range_on = s.alarm(FlagKind::Range).enabled;
-            if (range_on && !self.in_range(v)) || self.active.contains(FlagKind::Stuck) {
+            if (range_on && !self.in_range(v)) || self.m.active.contains(FlagKind::Stuck) {
                 return Admit::Withhold;
             }
         }
@@ -821,10 +865,10 @@ impl Detectors {
         }
         Admit::Filter(Gate {
             limit: s.spike_limit,
-            reacquire: if self.run_len + 1 >= s.spike_confirm {
-                self.run_sign
+            reacquire: if self.m.run_len + 1 >= s.spike_confirm {
+                self.m.run_sign
             } else if self.recovering() {
-                -self.last_z.signum()
+                -self.m.last_z.signum()
             } else {
                 0.0
             },
@@ -836,7 +880,7 @@ impl Detectors {
     /// below 1e-3 at any designed rate), so an outlier of the other sign is the good signal. Such an outlier
     /// re-acquires at once and is neither a spike nor evidence of a shift.
     fn recovering(&self) -> bool {
-        self.run_len == 0 && self.last_z.abs() > RECOVERY_FRACTION * self.settings.spike_limit
+        self.m.run_len == 0 && self.m.last_z.abs() > RECOVERY_FRACTION * self.settings.spike_limit
     }
 
     /// Takes the result of filtering one sample at time `t` with raw value `value` (a value withheld by
@@ -864,7 +908,7 @@ impl Detectors {
             && step.kind == StepKind::Observed
             && s.spike_withhold
             && self.recovering()
-            && z.signum() == -self.last_z.signum();
+            && z.signum() == -self.m.last_z.signum();
         if outlier && !recovery {
             conditions[FlagKind::Spike.index()].raise = true;
         } else {
@@ -874,40 +918,42 @@ impl Detectors {
             StepKind::Withheld => {
                 // An outlier held back from the update: part of a run that may prove to be a level shift.
                 let sign = z.signum();
-                if sign != self.run_sign {
-                    self.run_sign = sign;
-                    self.run_len = 0;
-                    self.run_sum = 0.0;
+                if sign != self.m.run_sign {
+                    self.m.run_sign = sign;
+                    self.m.run_len = 0;
+                    self.m.run_sum = 0.0;
                 }
-                self.run_len += 1;
-                self.run_sum += z.clamp(-s.spike_limit, s.spike_limit);
+                self.m.run_len += 1;
+                self.m.run_sum += z.clamp(-s.spike_limit, s.spike_limit);
             }
             StepKind::Observed if z.is_finite() => {
-                if self.forecast_std.is_nan() || !outlier {
-                    self.forecast_std = step.predicted_var.sqrt();
+                if self.m.forecast_std.is_nan() || !outlier {
+                    self.m.forecast_std = step.predicted_var.sqrt();
                 }
                 if recovery {
                     // Back from a value the filter should not have taken in: nothing to charge anyone with.
                 } else if outlier && s.spike_withhold {
                     // The filter re-acquired on a confirmed shift: the whole run goes into the CUSUM.
-                    let run = self.run_sum + z.clamp(-s.spike_limit, s.spike_limit);
-                    let n = f64::from(self.run_len + 1);
+                    let run = self.m.run_sum + z.clamp(-s.spike_limit, s.spike_limit);
+                    let n = f64::from(self.m.run_len + 1);
                     if run > 0.0 {
-                        self.s_hi = (self.s_hi + run - n * s.cusum_k).clamp(0.0, 2.0 * s.cusum_h);
-                        self.s_lo = 0.0;
+                        self.m.s_hi =
+                            (self.m.s_hi + run - n * s.cusum_k).clamp(0.0, 2.0 * s.cusum_h);
+                        self.m.s_lo = 0.0;
                     } else {
-                        self.s_lo = (self.s_lo - run - n * s.cusum_k).clamp(0.0, 2.0 * s.cusum_h);
-                        self.s_hi = 0.0;
+                        self.m.s_lo =
+                            (self.m.s_lo - run - n * s.cusum_k).clamp(0.0, 2.0 * s.cusum_h);
+                        self.m.s_hi = 0.0;
                     }
                 } else if !outlier {
                     self.cusum_step(z);
                     self.noise_step(z);
                 }
-                self.run_sign = 0.0;
-                self.run_len = 0;
-                self.run_sum = 0.0;
+                self.m.run_sign = 0.0;
+                self.m.run_len = 0;
+                self.m.run_sum = 0.0;
                 // After a re-acquisition the state is fresh: no recovery chain from its large z.
-                self.last_z = if outlier { 0.0 } else { z };
+                self.m.last_z = if outlier { 0.0 } else { z };
             }
             _ => {}
         }
@@ -917,19 +963,19 @@ impl Detectors {
             c.raise = stat > s.cusum_h;
             c.clear = stat < s.cusum_h * (1.0 - s.alarm(FlagKind::Bias).deadband);
         }
-        conditions[FlagKind::Noise.index()] = self.noise;
+        conditions[FlagKind::Noise.index()] = self.m.noise;
         self.apply(t, &conditions)
     }
 
     /// Raises (`on`) or clears the `learning` flag at `t`: the channel's own state, not a test.
     pub fn set_learning(&mut self, t: f64, on: bool) -> FlagUpdate {
         let mut update = FlagUpdate {
-            active: self.active,
+            active: self.m.active,
             ..FlagUpdate::default()
         };
         let k = FlagKind::Learning;
-        if self.active.contains(k) != on {
-            let a = &mut self.alarms[k.index()];
+        if self.m.active.contains(k) != on {
+            let a = &mut self.m.alarms[k.index()];
             a.active = on;
             a.pending = false;
             if on {
@@ -937,7 +983,7 @@ impl Detectors {
             }
             self.record(k, on, &mut update);
         }
-        update.active = self.active;
+        update.active = self.m.active;
         update
     }
 
@@ -947,7 +993,7 @@ impl Detectors {
         conditions[FlagKind::Stale.index()].raise = true;
         // Other flags hold their state: no sample, no evidence either way.
         let mut update = FlagUpdate {
-            active: self.active,
+            active: self.m.active,
             ..FlagUpdate::default()
         };
         let k = FlagKind::Stale;
@@ -955,11 +1001,11 @@ impl Detectors {
             return update;
         }
         if let Some(raised) =
-            self.alarms[k.index()].update(t, conditions[k.index()], self.settings.alarm(k))
+            self.m.alarms[k.index()].update(t, conditions[k.index()], self.settings.alarm(k))
         {
             self.record(k, raised, &mut update);
         }
-        update.active = self.active;
+        update.active = self.m.active;
         update
     }
 
@@ -969,8 +1015,8 @@ impl Detectors {
             return;
         }
         let cap = 2.0 * s.cusum_h;
-        self.s_hi = (self.s_hi + z - s.cusum_k).clamp(0.0, cap);
-        self.s_lo = (self.s_lo - z - s.cusum_k).clamp(0.0, cap);
+        self.m.s_hi = (self.m.s_hi + z - s.cusum_k).clamp(0.0, cap);
+        self.m.s_lo = (self.m.s_lo - z - s.cusum_k).clamp(0.0, cap);
     }
 
     fn noise_step(&mut self, z: f64) {
@@ -978,36 +1024,36 @@ impl Detectors {
         if !s.alarm(FlagKind::Noise).enabled {
             return;
         }
-        self.block_sum += z * z;
-        self.block_len += 1;
-        if self.block_len >= s.noise_window {
-            let mean = self.block_sum / f64::from(self.block_len);
+        self.m.block_sum += z * z;
+        self.m.block_len += 1;
+        if self.m.block_len >= s.noise_window {
+            let mean = self.m.block_sum / f64::from(self.m.block_len);
             let db = s.alarm(FlagKind::Noise).deadband;
-            self.noise = Condition {
+            self.m.noise = Condition {
                 raise: mean < s.noise_low || mean > s.noise_high,
                 clear: mean > s.noise_low / (1.0 - db) && mean < s.noise_high * (1.0 - db),
             };
-            self.noise_mean = mean;
-            self.block_sum = 0.0;
-            self.block_len = 0;
+            self.m.noise_mean = mean;
+            self.m.block_sum = 0.0;
+            self.m.block_len = 0;
         }
     }
 
     fn stuck(&mut self, v: f64) -> Condition {
         let s = &self.settings;
-        let from_model = STUCK_FRACTION * self.forecast_std;
+        let from_model = STUCK_FRACTION * self.m.forecast_std;
         let tol = if from_model.is_finite() {
             s.stuck_resolution.max(from_model)
         } else {
             s.stuck_resolution
         };
-        if (v - self.anchor).abs() <= tol {
-            self.flat_len += 1;
+        if (v - self.m.anchor).abs() <= tol {
+            self.m.flat_len += 1;
         } else {
-            self.anchor = v;
-            self.flat_len = 1;
+            self.m.anchor = v;
+            self.m.flat_len = 1;
         }
-        let stuck = self.flat_len >= s.stuck_window;
+        let stuck = self.m.flat_len >= s.stuck_window;
         Condition {
             raise: stuck,
             clear: !stuck,
@@ -1021,25 +1067,26 @@ impl Detectors {
             if !design.enabled {
                 continue;
             }
-            if let Some(raised) = self.alarms[k.index()].update(t, conditions[k.index()], &design) {
+            if let Some(raised) = self.m.alarms[k.index()].update(t, conditions[k.index()], &design)
+            {
                 self.record(k, raised, &mut update);
             }
         }
-        update.active = self.active;
+        update.active = self.m.active;
         update
     }
 
     fn record(&mut self, k: FlagKind, raised: bool, update: &mut FlagUpdate) {
         if raised {
-            self.active.insert(k);
+            self.m.active.insert(k);
             update.raised.insert(k);
         } else {
-            self.active.remove(k);
+            self.m.active.remove(k);
             update.cleared.insert(k);
             if k == FlagKind::Bias {
                 // A fresh Page scheme after each alarm, so the designed run length holds from here.
-                self.s_hi = 0.0;
-                self.s_lo = 0.0;
+                self.m.s_hi = 0.0;
+                self.m.s_lo = 0.0;
             }
         }
     }

@@ -441,6 +441,69 @@ impl<M: StateSpace<N>, const N: usize> Kalman<M, N> {
     pub fn state(&self) -> (SVector<f64, N>, SMatrix<f64, N, N>) {
         (self.a, self.p)
     }
+
+    fn save(&self) -> FilterState {
+        FilterState {
+            a: self.a.iter().copied().collect(),
+            p: self.p.iter().copied().collect(),
+            p_inf: self.p_inf.iter().copied().collect(),
+            diffuse: self.diffuse,
+            started: self.started,
+        }
+    }
+
+    fn restore(&mut self, s: &FilterState) -> Result<(), StateError> {
+        if s.a.len() != N || s.p.len() != N * N || s.p_inf.len() != N * N {
+            return Err(StateError::Size {
+                states: s.a.len(),
+                expected: N,
+            });
+        }
+        if s.a
+            .iter()
+            .chain(&s.p)
+            .chain(&s.p_inf)
+            .any(|v| !v.is_finite())
+        {
+            return Err(StateError::NotFinite);
+        }
+        let p = SMatrix::<f64, N, N>::from_column_slice(&s.p);
+        if (0..N).any(|i| p[(i, i)] < 0.0) {
+            return Err(StateError::NegativeVariance);
+        }
+        self.a = SVector::from_column_slice(&s.a);
+        self.p = p;
+        self.p_inf = SMatrix::from_column_slice(&s.p_inf);
+        self.diffuse = s.diffuse;
+        self.started = s.started;
+        self.steady = None;
+        self.p_pred_prev = SMatrix::repeat(f64::NAN);
+        Ok(())
+    }
+}
+
+/// A filter's state as a checkpoint keeps it: state mean, proper and diffuse covariances (column-major), and
+/// where the filter is in its start-up. The model is not part of it: a state is restored into a filter of the
+/// same model, built from the saved parameters. The steady-state shortcut is not saved; a restored filter
+/// finds it again within a few samples.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct FilterState {
+    pub a: Vec<f64>,
+    pub p: Vec<f64>,
+    pub p_inf: Vec<f64>,
+    pub diffuse: bool,
+    pub started: bool,
+}
+
+/// Why a saved filter state does not fit a filter.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum StateError {
+    #[error("the saved state has {states} states, the model has {expected}")]
+    Size { states: usize, expected: usize },
+    #[error("the saved state holds a non-finite number")]
+    NotFinite,
+    #[error("the saved state has a negative variance")]
+    NegativeVariance,
 }
 
 /// A Kalman filter for any configured model, chosen at run time.
@@ -546,6 +609,16 @@ impl Filter {
 
     pub fn is_diffuse(&self) -> bool {
         each_filter!(self, k => k.is_diffuse())
+    }
+
+    /// The state a checkpoint keeps (allocates; not for the per-sample path).
+    pub fn save_state(&self) -> FilterState {
+        each_filter!(self, k => k.save())
+    }
+
+    /// Carries on from a saved state; on an error the filter is unchanged.
+    pub fn restore_state(&mut self, state: &FilterState) -> Result<(), StateError> {
+        each_filter!(self, k => k.restore(state))
     }
 
     /// Filtered state mean and covariance (proper part, row-major), for diagnostics and checkpoints.

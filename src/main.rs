@@ -18,6 +18,9 @@ use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
+mod logformat;
+use logformat::LogFormat;
+
 /// The demo history `fit` uses without `--input`, built in so a fresh checkout works with no files at hand.
 const EXAMPLE_CSV: &str = include_str!("../config/examples/vessel_temperature.csv");
 const EXAMPLE_NAME: &str = "bundled example vessel_temperature.csv";
@@ -80,7 +83,8 @@ enum Command {
         configuration: channel models and flag designs are applied at once (changed channels restart, the others \
         keep their state), an invalid file is refused and the daemon carries on. Under systemd (Type=notify) it \
         reports readiness, reloads and shutdown, and pings the watchdog. With a [metrics] table it serves \
-        Prometheus metrics on /metrics and a health check on /health. Logs go to stderr; set \
+        Prometheus metrics on /metrics and a health check on /health. Logs go to stderr, or to the systemd \
+        journal when stderr is connected to it (--log-format auto; text, json and journald force one); set \
         GAUGEWISE_LOG or RUST_LOG (e.g. debug, or gaugewise=debug) to change the level, default info."
     )]
     Run(RunArgs),
@@ -148,6 +152,9 @@ struct RunArgs {
     /// Configuration (TOML) with [broker], [[inputs]], [output] and the channel models.
     #[arg(long, value_name = "FILE.toml")]
     config: PathBuf,
+    /// How the log is written to stderr or the journal.
+    #[arg(long, value_enum, value_name = "FORMAT", default_value_t = LogFormat::Auto)]
+    log_format: LogFormat,
 }
 
 #[derive(Debug, clap::Args)]
@@ -416,7 +423,7 @@ fn run(args: &RunArgs) -> Result<(), Failure> {
     let (settings, pipeline) =
         runtime::from_config(&daemon, runtime::wall_clock()).map_err(input)?;
     runtime::mqtt_options(&settings).map_err(input)?;
-    init_logging();
+    init_logging(args.log_format);
     tracing::info!(
         config = %args.config.display(),
         overrides = ?daemon.env_overrides,
@@ -499,7 +506,7 @@ fn demo(args: &DemoArgs) -> Result<(), Failure> {
             format!("warn,{}", gaugewise::broker::QUIET_LOG_DIRECTIVE),
         );
     }
-    init_logging();
+    init_logging(LogFormat::Auto);
     let rt = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .thread_name("gaugewise-demo")
@@ -548,9 +555,8 @@ fn demo(args: &DemoArgs) -> Result<(), Failure> {
     Ok(())
 }
 
-/// Log lines to stderr through `tracing`: level from GAUGEWISE_LOG, else RUST_LOG, else info.
-fn init_logging() {
-    use std::io::IsTerminal;
+/// The `tracing` log, in `format` (see `logformat`): level from GAUGEWISE_LOG, else RUST_LOG, else info.
+fn init_logging(format: LogFormat) {
     use tracing_subscriber::EnvFilter;
     let filter = ["GAUGEWISE_LOG", "RUST_LOG"]
         .iter()
@@ -560,9 +566,5 @@ fn init_logging() {
                 .and_then(|v| EnvFilter::try_new(v).ok())
         })
         .unwrap_or_else(|| EnvFilter::new("info"));
-    let _ = tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        .with_writer(io::stderr)
-        .with_ansi(io::stderr().is_terminal())
-        .try_init();
+    logformat::install(format, filter);
 }

@@ -35,6 +35,12 @@ pub enum ModelError {
     NotStationary(Vec<f64>),
     #[error("unknown model '{0}' (expected level, lag, trend or arma(p,q))")]
     UnknownKind(String),
+    #[error("a {kind} model has {expected} parameters, got {got}")]
+    ValueCount {
+        kind: String,
+        expected: usize,
+        got: usize,
+    },
 }
 
 /// Which family a model belongs to, with ARMA orders.
@@ -174,6 +180,68 @@ fn finite(name: &'static str, value: f64) -> Result<(), ModelError> {
 }
 
 impl ModelSpec {
+    /// The parameters as a flat list in a fixed order per kind (level: obs_var, level_var; lag: mean, tau,
+    /// state_var, obs_var; trend: obs_var, level_var, slope_var; arma: mean, ar.., ma.., var), so a checkpoint
+    /// can store any model as its kind's name, its interval and numbers.
+    pub fn values(&self) -> Vec<f64> {
+        match &self.params {
+            ModelParams::Level { obs_var, level_var } => vec![*obs_var, *level_var],
+            ModelParams::Lag {
+                mean,
+                tau,
+                state_var,
+                obs_var,
+            } => vec![*mean, *tau, *state_var, *obs_var],
+            ModelParams::Trend {
+                obs_var,
+                level_var,
+                slope_var,
+            } => vec![*obs_var, *level_var, *slope_var],
+            ModelParams::Arma { mean, ar, ma, var } => std::iter::once(*mean)
+                .chain(ar.iter().copied())
+                .chain(ma.iter().copied())
+                .chain(std::iter::once(*var))
+                .collect(),
+        }
+    }
+
+    /// The inverse of [`ModelSpec::values`], validated.
+    pub fn from_values(kind: ModelKind, interval: f64, v: &[f64]) -> Result<ModelSpec, ModelError> {
+        if v.len() != kind.n_params() {
+            return Err(ModelError::ValueCount {
+                kind: kind.to_string(),
+                expected: kind.n_params(),
+                got: v.len(),
+            });
+        }
+        let params = match kind {
+            ModelKind::Level => ModelParams::Level {
+                obs_var: v[0],
+                level_var: v[1],
+            },
+            ModelKind::Lag => ModelParams::Lag {
+                mean: v[0],
+                tau: v[1],
+                state_var: v[2],
+                obs_var: v[3],
+            },
+            ModelKind::Trend => ModelParams::Trend {
+                obs_var: v[0],
+                level_var: v[1],
+                slope_var: v[2],
+            },
+            ModelKind::Arma { p, q } => ModelParams::Arma {
+                mean: v[0],
+                ar: v[1..1 + p].to_vec(),
+                ma: v[1 + p..1 + p + q].to_vec(),
+                var: v[1 + p + q],
+            },
+        };
+        let spec = ModelSpec { interval, params };
+        spec.validate()?;
+        Ok(spec)
+    }
+
     pub fn kind(&self) -> ModelKind {
         match &self.params {
             ModelParams::Level { .. } => ModelKind::Level,

@@ -57,7 +57,7 @@ impl Default for LearnSettings {
 }
 
 /// A channel's recent samples, oldest first when read.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Window {
     times: Vec<f64>,
     values: Vec<f64>,
@@ -201,6 +201,18 @@ impl Learner {
 
     pub fn window(&self) -> &Window {
         &self.window
+    }
+
+    /// A learner that carries on with a saved window; None when the window does not fit `settings` (another
+    /// window length or margin, or a damaged one), and the caller starts a fresh one.
+    pub fn resume(settings: LearnSettings, window: Window) -> Option<Self> {
+        let w = &window;
+        let fits = w.times.len() == settings.window.max(1)
+            && w.values.len() == w.times.len()
+            && w.head < w.times.len()
+            && w.len <= w.times.len()
+            && w.margin == settings.margin;
+        fits.then_some(Learner { settings, window })
     }
 
     /// Takes one outcome of the channel (no allocation).

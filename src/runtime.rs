@@ -39,6 +39,7 @@ pub mod counters;
 pub mod fitpool;
 pub mod http;
 pub mod metrics;
+pub mod persist;
 pub mod reload;
 pub mod service;
 pub mod setup;
@@ -122,6 +123,16 @@ pub struct Settings {
     pub instance: shard::Instance,
     /// Period of the counter summary in the log.
     pub summary_every: Duration,
+    /// Where channel state is kept between runs; None: not kept.
+    pub state: Option<StateSettings>,
+}
+
+/// Checkpoints of channel state ([`persist`]).
+#[derive(Debug, Clone, PartialEq)]
+pub struct StateSettings {
+    pub dir: std::path::PathBuf,
+    /// Period of the saves (another is made at shutdown).
+    pub every: Duration,
 }
 
 /// A sample on its way to its worker, with its wall-clock receive time (seconds since the epoch, for staleness)
@@ -138,6 +149,8 @@ enum Control {
     /// A reload changed the channel configuration: restart the channels whose model or flag design changed, keep
     /// the others, and report which were restarted.
     Channels(Arc<ChannelConfig>, oneshot::Sender<Vec<reload::Restarted>>),
+    /// A copy of every channel's state, for a checkpoint.
+    Snapshot(oneshot::Sender<Vec<persist::SavedEntry>>),
 }
 
 /// An input the daemon refused: why (a short fixed label) and what it was about (channel, else topic).
@@ -413,6 +426,28 @@ pub async fn run_service(
         "starting"
     );
 
+    let (saver, mut restored) = match &shared.settings.state {
+        Some(state) => {
+            let (saver, saved) = persist::load_checkpoint(state, &shared.settings.instance).await;
+            let mut per_worker: Vec<Vec<persist::SavedEntry>> =
+                (0..workers).map(|_| Vec::new()).collect();
+            let mut foreign = 0;
+            for entry in saved.into_iter().flat_map(|s| s.channels) {
+                if shared.settings.instance.owns(&entry.name) {
+                    per_worker[shard::shard_of(&entry.name, workers)].push(entry);
+                } else {
+                    foreign += 1;
+                }
+            }
+            (saver, Some((per_worker, foreign)))
+        }
+        None => {
+            info!("channel state is not kept across restarts (no state directory; see [state])");
+            (None, None)
+        }
+    };
+    let mut tally = RestoreTally::default();
+
     let (stop_tx, stop_rx) = watch::channel(false);
     let mut senders = Vec::with_capacity(workers);
     let mut controls = Vec::with_capacity(workers);
@@ -422,7 +457,7 @@ pub async fn run_service(
         let (control_tx, control_rx) = mpsc::channel(1);
         senders.push(tx);
         controls.push(control_tx);
-        let worker = Worker::new(
+        let mut worker = Worker::new(
             id,
             shared.clone(),
             channels.clone(),
@@ -431,8 +466,28 @@ pub async fn run_service(
             pipeline.params.clone(),
             client.clone(),
         );
+        if let Some((per_worker, _)) = restored.as_mut() {
+            worker.restore(std::mem::take(&mut per_worker[id]), &mut tally);
+        }
         worker_tasks.push(tokio::spawn(worker.run(rx, control_rx, stop_rx.clone())));
     }
+    if let Some((_, foreign)) = restored {
+        tally.foreign = foreign;
+        report_restore(&tally);
+    }
+    let saver_task = saver.clone().map(|saver| {
+        let every = shared
+            .settings
+            .state
+            .as_ref()
+            .map_or(Duration::from_secs(60), |s| s.every);
+        tokio::spawn(persist::save_loop(
+            shared.clone(),
+            controls.clone(),
+            saver,
+            every,
+        ))
+    });
     let poller = tokio::spawn(poll_loop(
         eventloop,
         client.clone(),
@@ -480,20 +535,50 @@ pub async fn run_service(
     }
     shared.routing.store(false, Ordering::SeqCst);
     let _ = stop_tx.send(true);
+    if let Some(t) = &saver_task {
+        t.abort();
+    }
     let drained = tokio::time::timeout(DRAIN_TIMEOUT, async {
         let mut total = 0;
+        let mut saved = Some(Vec::new());
         for t in worker_tasks {
-            total += t.await.unwrap_or(0);
+            match t.await {
+                Ok(end) => {
+                    total += end.channels;
+                    match (saved.as_mut(), end.saved) {
+                        (Some(all), Some(mine)) => all.extend(mine),
+                        _ => saved = None,
+                    }
+                }
+                Err(_) => saved = None,
+            }
         }
-        total
+        (total, saved)
     })
     .await;
-    let channel_count = match drained {
-        Ok(n) => n,
+    let (channel_count, final_state) = match drained {
+        Ok((n, saved)) => (n, saved),
         Err(_) => {
             warn!("workers did not drain their queues within {DRAIN_TIMEOUT:?}");
-            shared.channels.load(Ordering::Relaxed)
+            (shared.channels.load(Ordering::Relaxed), None)
         }
+    };
+    // The last save runs beside the flush below; a worker that did not stop cleanly leaves the last periodic
+    // checkpoint in place rather than a partial one.
+    let final_save = match (saver, final_state) {
+        (Some(saver), Some(channels)) => Some(tokio::spawn(persist::save_checkpoint(
+            shared.clone(),
+            saver,
+            persist::Saved {
+                saved_at: wall_clock(),
+                channels,
+            },
+        ))),
+        (Some(_), None) => {
+            warn!("channel state not saved at shutdown: a worker did not stop in time; the last checkpoint stays");
+            None
+        }
+        _ => None,
     };
 
     // The offline status and the disconnect go through the same FIFO request queue as the outputs, so when the
@@ -533,6 +618,9 @@ pub async fn run_service(
     // Dropping the event loop closes the connection; without a DISCONNECT sent, the broker publishes the Last Will,
     // which is the offline status too.
     poller_handle.abort();
+    if let Some(save) = final_save {
+        let _ = save.await;
+    }
     summary.abort();
     if let Some(m) = metrics_server {
         m.abort();
@@ -544,6 +632,25 @@ pub async fn run_service(
         channels: channel_count,
         flushed,
     })
+}
+
+/// One log line on what came back from the checkpoint.
+fn report_restore(t: &RestoreTally) {
+    info!(
+        restored = t.restored,
+        windows = t.windows,
+        fresh = t.fresh,
+        refused = t.refused,
+        other_instances = t.foreign,
+        "channels taken back from the saved state"
+    );
+    if t.fresh > 0 {
+        warn!(
+            "{} saved channels start fresh, e.g. {}",
+            t.fresh,
+            t.examples.join("; ")
+        );
+    }
 }
 
 async fn summary_loop(shared: Arc<Shared>) {
@@ -790,7 +897,7 @@ struct ChannelState {
 
 /// A channel as the configuration describes it: with its model, or learning one when its table gave no
 /// parameters.
-fn build_channel(
+pub(crate) fn build_channel(
     config: &ChannelConfig,
     name: &str,
 ) -> Result<Channel, crate::channel::ChannelError> {
@@ -808,6 +915,28 @@ fn build_channel(
 struct FitDone {
     index: usize,
     decision: Option<Decision>,
+}
+
+/// What a stopped worker hands back.
+struct WorkerEnd {
+    channels: usize,
+    /// Its channels' final state, when state is kept.
+    saved: Option<Vec<persist::SavedEntry>>,
+}
+
+/// How the channels of a checkpoint were taken back at start.
+#[derive(Debug, Default)]
+struct RestoreTally {
+    restored: usize,
+    /// Of those, the ones whose re-estimation window came back too.
+    windows: usize,
+    /// Not taken back (configuration changed, unusable state): they start fresh on their next sample.
+    fresh: usize,
+    /// Past `max_channels`, or no output topic.
+    refused: usize,
+    /// Owned by another instance now (`[instance]` changed).
+    foreign: usize,
+    examples: Vec<String>,
 }
 
 /// A worker: the state of the channels sharded to it.
@@ -859,13 +988,14 @@ impl Worker {
         }
     }
 
-    /// Processes samples until stopped, then drains the queue; returns the number of channels it held.
+    /// Processes samples until stopped, then drains the queue; returns the number of channels it held and, when
+    /// state is kept, their final state.
     async fn run(
         mut self,
         mut rx: mpsc::Receiver<Queued>,
         mut control: mpsc::Receiver<Control>,
         mut stop: watch::Receiver<bool>,
-    ) -> usize {
+    ) -> WorkerEnd {
         let tick = stale_tick(&self.shared.settings);
         let mut timer = tokio::time::interval(tick);
         timer.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
@@ -891,6 +1021,9 @@ impl Worker {
                     Control::Channels(config, reply) => {
                         let _ = reply.send(self.reconfigure(config));
                     }
+                    Control::Snapshot(reply) => {
+                        let _ = reply.send(self.snapshot());
+                    }
                 },
                 _ = timer.tick(), if self.stale.enabled() => {
                     let now = (self.shared.clock)();
@@ -907,7 +1040,15 @@ impl Worker {
             channels = self.channels.len(),
             "worker stopped"
         );
-        self.channels.len()
+        WorkerEnd {
+            channels: self.channels.len(),
+            saved: self
+                .shared
+                .settings
+                .state
+                .is_some()
+                .then(|| self.snapshot()),
+        }
     }
 
     fn on_sample(&mut self, queued: Queued) {
@@ -1118,23 +1259,10 @@ impl Worker {
         if let Some(&i) = self.index.get(name) {
             return Some(i);
         }
-        let max = self.shared.settings.max_channels;
-        let taken = self.shared.channels.fetch_add(1, Ordering::Relaxed);
-        if taken >= max {
-            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
-            self.shared.refuse(&Refusal {
-                reason: "too_many_channels",
-                key: name.to_string(),
-                detail: format!("the daemon already keeps {max} channels (limits.max_channels)"),
-            });
-            return None;
-        }
-        let learning = self.config.learning_for(name);
         let channel = match build_channel(&self.config, name) {
             Ok(c) => c,
             Err(e) => {
                 // Config validation builds every model it names, so this means a bug; refuse, do not panic.
-                self.shared.channels.fetch_sub(1, Ordering::Relaxed);
                 self.shared.refuse(&Refusal {
                     reason: "bad_model",
                     key: name.to_string(),
@@ -1143,25 +1271,52 @@ impl Worker {
                 return None;
             }
         };
+        // A channel that learns its parameters needs the window for its first fit even with [reestimate] off.
+        let learner =
+            persist::learn_settings(&self.config, name).map(|s| Box::new(Learner::new(s)));
+        match self.add_channel(name, channel, learner, f64::NAN) {
+            Ok(i) => Some(i),
+            Err(r) => {
+                self.shared.refuse(&r);
+                None
+            }
+        }
+    }
+
+    /// Adds a channel's state (new, or taken back from a checkpoint); Err past `max_channels` or without topics.
+    fn add_channel(
+        &mut self,
+        name: &str,
+        channel: Channel,
+        learner: Option<Box<Learner>>,
+        last_received: f64,
+    ) -> Result<usize, Refusal> {
+        let max = self.shared.settings.max_channels;
+        let refusal = |reason: &'static str, detail: String| Refusal {
+            reason,
+            key: name.to_string(),
+            detail,
+        };
         let mut topic = String::new();
         if let Err(e) = self.output.render(name, &mut topic) {
-            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
-            self.shared.refuse(&Refusal {
-                reason: "no_output_topic",
-                key: name.to_string(),
-                detail: format!("no output topic for this channel: {e}"),
-            });
-            return None;
+            let detail = format!("no output topic for this channel: {e}");
+            return Err(refusal("no_output_topic", detail));
         }
         let mut flags_topic = String::new();
         if let Err(e) = self.flags.render(name, &mut flags_topic) {
-            self.shared.channels.fetch_sub(1, Ordering::Relaxed);
-            self.shared.refuse(&Refusal {
-                reason: "no_output_topic",
-                key: name.to_string(),
-                detail: format!("no flags topic for this channel: {e}"),
+            let detail = format!("no flags topic for this channel: {e}");
+            return Err(refusal("no_output_topic", detail));
+        }
+        // Taken only below the limit, so the channel gauge never reads above it, even for a moment.
+        let taken = self
+            .shared
+            .channels
+            .fetch_update(Ordering::Relaxed, Ordering::Relaxed, |n| {
+                (n < max).then_some(n + 1)
             });
-            return None;
+        if taken.is_err() {
+            let detail = format!("the daemon already keeps {max} channels (limits.max_channels)");
+            return Err(refusal("too_many_channels", detail));
         }
         let i = self.channels.len();
         self.channels.push(ChannelState {
@@ -1169,22 +1324,66 @@ impl Worker {
             channel,
             topic,
             flags_topic,
-            last_received: f64::NAN,
+            last_received,
             stale: false,
-            // A channel that learns its parameters needs the window for its first fit even with
-            // [reestimate] off.
-            learner: self
-                .config
-                .learn_for(name)
-                .copied()
-                .or_else(|| learning.map(|_| reestimate::LearnSettings::default()))
-                .map(|s| Box::new(Learner::new(s))),
+            learner,
             fitting: false,
         });
         let stale_index = self.stale.add();
         debug_assert_eq!(stale_index, i);
+        if last_received.is_finite() {
+            // A channel taken back from a checkpoint goes stale from its last sample before the restart.
+            self.stale.on_sample(i, last_received);
+        }
         self.index.insert(name.to_string(), i);
-        Some(i)
+        Ok(i)
+    }
+
+    /// Takes back the channels of a checkpoint that belong to this worker (before it runs).
+    fn restore(&mut self, entries: Vec<persist::SavedEntry>, tally: &mut RestoreTally) {
+        for entry in entries {
+            if self.index.contains_key(&entry.name) {
+                continue;
+            }
+            match persist::restore(&self.config, &entry) {
+                Ok(r) => {
+                    let kept = r.window_kept;
+                    match self.add_channel(&entry.name, r.channel, r.learner, entry.last_received) {
+                        Ok(_) => {
+                            tally.restored += 1;
+                            tally.windows += usize::from(kept);
+                        }
+                        Err(refusal) => {
+                            tally.refused += 1;
+                            debug!(channel = %entry.name, "not restored: {}", refusal.detail);
+                        }
+                    }
+                }
+                Err(why) => {
+                    tally.fresh += 1;
+                    if tally.examples.len() < 5 {
+                        tally.examples.push(format!("{}: {why}", entry.name));
+                    }
+                    debug!(channel = %entry.name, "not restored: {why}");
+                }
+            }
+        }
+    }
+
+    /// Every channel's state, for a checkpoint.
+    fn snapshot(&self) -> Vec<persist::SavedEntry> {
+        self.channels
+            .iter()
+            .map(|c| {
+                persist::entry(
+                    &self.config,
+                    &c.name,
+                    &c.channel,
+                    c.learner.as_deref(),
+                    c.last_received,
+                )
+            })
+            .collect()
     }
 
     fn report_stale(&mut self, i: usize, now: f64) {
@@ -1347,6 +1546,7 @@ mod tests {
             max_channels: 1000,
             instance: shard::Instance::ALL,
             summary_every: Duration::from_secs(60),
+            state: None,
         }
     }
 

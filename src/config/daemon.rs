@@ -224,6 +224,31 @@ pub struct MetricsConfig {
     pub listen: std::net::SocketAddr,
 }
 
+/// Where channel state is kept between runs (`[state]`): saved every `save_every_s` and at shutdown, restored at
+/// start. Kept by default when a directory is known: `state.dir`, else systemd's `$STATE_DIRECTORY`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StateConfig {
+    /// None: channel state is not kept (no directory known, or `keep = false`).
+    pub dir: Option<PathBuf>,
+    /// Where `dir` came from, for `check` and the log.
+    pub origin: &'static str,
+    pub save_every_s: f64,
+}
+
+impl Default for StateConfig {
+    fn default() -> Self {
+        StateConfig {
+            dir: None,
+            origin: "no state.dir and no $STATE_DIRECTORY",
+            save_every_s: DEFAULT_SAVE_EVERY_S,
+        }
+    }
+}
+
+/// Checkpoint period when `[state]` gives none: at most a minute of a channel's history is replayed from nothing
+/// after a crash, for one small write a minute.
+pub const DEFAULT_SAVE_EVERY_S: f64 = 60.0;
+
 /// Where the metrics endpoint listens when `[metrics]` gives no `listen`.
 pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:9464";
 
@@ -308,6 +333,14 @@ pub(super) struct RawLimits {
 pub(super) struct RawInstance {
     index: Option<i64>,
     count: Option<i64>,
+}
+
+#[derive(Debug, Default, Clone, Deserialize)]
+#[serde(deny_unknown_fields, expecting = "a [state] table")]
+pub(super) struct RawState {
+    keep: Option<bool>,
+    dir: Option<String>,
+    save_every_s: Option<f64>,
 }
 
 #[derive(Debug, Default, Clone, Deserialize)]
@@ -800,6 +833,60 @@ pub(super) fn limits(raw: &RawLimits, ctx: &Ctx) -> Result<LimitsConfig, ConfigE
     })
 }
 
+/// `[state]`; `state_directory` is systemd's `$STATE_DIRECTORY` (colon-separated when the unit names several).
+pub(super) fn state(
+    raw: &RawState,
+    ctx: &Ctx,
+    state_directory: Option<&str>,
+) -> Result<StateConfig, ConfigError> {
+    let save_every_s = ctx.seconds(
+        "state.save_every_s",
+        raw.save_every_s.unwrap_or(DEFAULT_SAVE_EVERY_S),
+        false,
+    )?;
+    if save_every_s < 1.0 {
+        return Err(ctx.invalid(
+            "state.save_every_s",
+            format!(
+                "must be at least 1 s: each save writes every channel's state (got {save_every_s})"
+            ),
+        ));
+    }
+    if raw.keep == Some(false) {
+        if raw.dir.is_some() {
+            return Err(ctx.invalid(
+                "state.dir",
+                "is given but state.keep is false: remove one of them",
+            ));
+        }
+        return Ok(StateConfig {
+            dir: None,
+            origin: "state.keep = false",
+            save_every_s,
+        });
+    }
+    let systemd = state_directory
+        .and_then(|v| v.split(':').next())
+        .filter(|d| !d.is_empty());
+    let (dir, origin) = match (&raw.dir, systemd) {
+        (Some(d), _) => (Some(ctx.path("state.dir", d)?), "state.dir"),
+        (None, Some(d)) => (Some(PathBuf::from(d)), "$STATE_DIRECTORY"),
+        (None, None) if raw.keep == Some(true) => {
+            return Err(ctx.missing(
+                "state.dir",
+                "state.keep is true but no directory is known: set state.dir (systemd sets $STATE_DIRECTORY \
+                 from StateDirectory=)",
+            ))
+        }
+        (None, None) => (None, StateConfig::default().origin),
+    };
+    Ok(StateConfig {
+        dir,
+        origin,
+        save_every_s,
+    })
+}
+
 pub(super) fn instance(raw: &RawInstance, ctx: &Ctx) -> Result<InstanceConfig, ConfigError> {
     let count = ctx.int("instance.count", raw.count.unwrap_or(1), 1, MAX_INSTANCES)?;
     let index = raw.index.unwrap_or(0);
@@ -1108,6 +1195,8 @@ pub struct DaemonConfig {
     pub max_channels: usize,
     /// The metrics endpoint; None: off (no `[metrics]` table).
     pub metrics: Option<MetricsConfig>,
+    /// Where channel state is kept between runs.
+    pub state: StateConfig,
     /// Which share of the channels this daemon handles (`[instance]`; default: all).
     pub instance: InstanceConfig,
     /// Environment variables that overrode keys, as `VAR -> key` (values are not kept: one may be a password).
@@ -1265,6 +1354,7 @@ pub(super) fn assemble(config: &super::Config, ctx: &Ctx) -> Result<DaemonConfig
         stale_every_s: config.timing.stale_every_s,
         max_channels: config.limits.max_channels,
         metrics: config.metrics,
+        state: config.state.clone(),
         instance: config.instance,
         env_overrides: config
             .env
@@ -1414,6 +1504,20 @@ impl DaemonConfig {
         }
         let _ = writeln!(s, "limits: at most {} channels", self.max_channels);
         let _ = writeln!(s, "instance: {}", self.instance.describe());
+        match &self.state.dir {
+            Some(dir) => {
+                let _ = writeln!(
+                    s,
+                    "state: kept in {} (from {}), saved every {} s and at shutdown",
+                    dir.display(),
+                    self.state.origin,
+                    self.state.save_every_s
+                );
+            }
+            None => {
+                let _ = writeln!(s, "state: not kept across restarts ({})", self.state.origin);
+            }
+        }
         match &self.metrics {
             None => {
                 let _ = writeln!(s, "metrics: off");

@@ -60,6 +60,9 @@ pub struct Counters {
     pub reestimate_not_converged: AtomicU64,
     pub reestimate_no_gain: AtomicU64,
     pub reestimate_failed: AtomicU64,
+    /// Checkpoints of channel state written, and attempts that failed.
+    pub checkpoints_saved: AtomicU64,
+    pub checkpoints_failed: AtomicU64,
     rejected_total: AtomicU64,
     rejected: Mutex<HashMap<(&'static str, String), u64>>,
 }
@@ -83,6 +86,8 @@ pub struct CounterSnapshot {
     pub reestimate_accepted: u64,
     /// Refused re-estimations, all reasons together.
     pub reestimate_refused: u64,
+    pub checkpoints_saved: u64,
+    pub checkpoints_failed: u64,
     /// Rejections per reason and channel (or topic, when no channel could be named), sorted.
     pub rejected_by: BTreeMap<(String, String), u64>,
 }
@@ -129,6 +134,8 @@ impl Counters {
             reestimate_refused: get(&self.reestimate_not_converged)
                 + get(&self.reestimate_no_gain)
                 + get(&self.reestimate_failed),
+            checkpoints_saved: get(&self.checkpoints_saved),
+            checkpoints_failed: get(&self.checkpoints_failed),
             rejected_by: map
                 .iter()
                 .map(|((r, k), n)| ((r.to_string(), k.clone()), *n))
@@ -181,6 +188,13 @@ impl fmt::Display for CounterSnapshot {
                 f,
                 " reestimated={} reestimate_refused={}",
                 self.reestimate_accepted, self.reestimate_refused
+            )?;
+        }
+        if self.checkpoints_saved + self.checkpoints_failed > 0 {
+            write!(
+                f,
+                " checkpoints={} checkpoint_failures={}",
+                self.checkpoints_saved, self.checkpoints_failed
             )?;
         }
         Ok(())

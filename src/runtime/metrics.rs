@@ -280,6 +280,27 @@ pub fn render(s: &Snapshot) -> String {
         c.reestimate_refused,
     );
 
+    family(
+        &mut out,
+        "gaugewise_checkpoints_total",
+        "counter",
+        "Checkpoints of channel state, by result: saved, or failed (the last good one stays; retried next time).",
+    );
+    labelled(
+        &mut out,
+        "gaugewise_checkpoints_total",
+        "result",
+        "saved",
+        c.checkpoints_saved,
+    );
+    labelled(
+        &mut out,
+        "gaugewise_checkpoints_total",
+        "result",
+        "failed",
+        c.checkpoints_failed,
+    );
+
     counter(
         &mut out,
         "gaugewise_reconnects_total",

@@ -94,6 +94,10 @@ pub fn from_config(
             count: config.instance.count,
         },
         summary_every: SUMMARY_EVERY,
+        state: config.state.dir.as_ref().map(|dir| super::StateSettings {
+            dir: dir.clone(),
+            every: Duration::from_secs_f64(config.state.save_every_s),
+        }),
     };
     Ok((
         settings,

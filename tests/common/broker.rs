@@ -122,12 +122,22 @@ pub struct Mosquitto {
     port: u16,
     dir: tempfile::TempDir,
     child: Option<Child>,
+    /// Lines appended to the generated configuration (`start_with`), `{dir}` already replaced.
+    extra: String,
 }
 
 impl Mosquitto {
     /// Starts Mosquitto, or returns `None` and prints why when it is not installed. On CI (`CI=true`), where
     /// .ci/run installs it, a missing binary fails the test instead, so a skipped half cannot pass unseen.
     pub fn start() -> Option<Mosquitto> {
+        Mosquitto::start_with("", &[])
+    }
+
+    /// `start` with `extra` configuration lines after the generated ones (another listener with TLS, a password
+    /// file, `allow_anonymous false`), and `files` (name, contents) written into the scratch directory first. In
+    /// `extra`, `{dir}` stands for that directory, so a line can name a file: `certfile {dir}/server.pem`. A later
+    /// line wins over a generated one where Mosquitto allows a setting once (`allow_anonymous`).
+    pub fn start_with(extra: &str, files: &[(&str, &[u8])]) -> Option<Mosquitto> {
         let Some(binary) = mosquitto_binary() else {
             let reason = "mosquitto is not installed (looked on PATH and in /usr/sbin): skipping the Mosquitto half";
             if std::env::var("CI").is_ok_and(|v| v == "true") {
@@ -140,11 +150,18 @@ impl Mosquitto {
             .prefix("gaugewise-mosquitto-")
             .tempdir()
             .expect("scratch directory for mosquitto");
+        for (name, contents) in files {
+            let path = dir.path().join(name);
+            std::fs::write(&path, contents)
+                .unwrap_or_else(|e| panic!("write {}: {e}", path.display()));
+        }
+        let extra = extra.replace("{dir}", &dir.path().display().to_string());
         let mut broker = Mosquitto {
             binary,
             port: 0,
             dir,
             child: None,
+            extra,
         };
         let mut last = String::new();
         // The free port can be taken between our probe and Mosquitto's bind: try a few.
@@ -247,10 +264,12 @@ impl Mosquitto {
              max_inflight_messages 1000\n\
              # As root Mosquitto would switch to the user \"mosquitto\", who cannot write the scratch directory;\n\
              # as any other user this line has no effect.\n\
-             user root\n",
+             user root\n\
+             {extra}\n",
             port = self.port,
             dir = dir.display(),
             max_packet = MAX_PACKET_SIZE,
+            extra = self.extra,
         );
         std::fs::write(&conf, text).expect("write mosquitto.conf");
         conf
@@ -342,6 +361,8 @@ pub struct ClientOptions {
     pub clean_session: bool,
     pub keep_alive: Duration,
     pub last_will: Option<LastWill>,
+    /// User name and password, for a broker that refuses anonymous clients.
+    pub credentials: Option<(String, String)>,
 }
 
 impl Default for ClientOptions {
@@ -351,6 +372,7 @@ impl Default for ClientOptions {
             clean_session: true,
             keep_alive: Duration::from_secs(10),
             last_will: None,
+            credentials: None,
         }
     }
 }
@@ -413,6 +435,9 @@ impl TestClient {
             .set_inflight(100);
         if let Some(will) = options.last_will.clone() {
             mqtt.set_last_will(will);
+        }
+        if let Some((user, password)) = &options.credentials {
+            mqtt.set_credentials(user.clone(), password.clone());
         }
         let (client, mut connection) = Client::new(mqtt, 1000);
         let shared = Arc::new(Mutex::new(Shared::default()));
