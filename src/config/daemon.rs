@@ -2369,6 +2369,56 @@ mod tests {
     }
 
     #[test]
+    fn state_directory_from_the_file_or_systemd() {
+        let ctx = Ctx {
+            file: "gw.toml",
+            base: Some(Path::new("/etc/gaugewise")),
+        };
+        let raw = |text: &str| -> RawState { toml::from_str(text).unwrap() };
+        // Nothing known: not kept, and said why.
+        let s = state(&raw(""), &ctx, None).unwrap();
+        assert_eq!((s.dir, s.save_every_s), (None, DEFAULT_SAVE_EVERY_S));
+        // systemd's StateDirectory= (the first of several).
+        let s = state(&raw(""), &ctx, Some("/var/lib/gaugewise:/var/lib/other")).unwrap();
+        assert_eq!(s.dir.as_deref(), Some(Path::new("/var/lib/gaugewise")));
+        assert_eq!(s.origin, "$STATE_DIRECTORY");
+        // The file wins, relative to the config's directory.
+        let s = state(
+            &raw("dir = \"state\"\nsave_every_s = 5"),
+            &ctx,
+            Some("/var/lib/gaugewise"),
+        )
+        .unwrap();
+        assert_eq!(s.dir.as_deref(), Some(Path::new("/etc/gaugewise/state")));
+        assert_eq!(s.save_every_s, 5.0);
+        // keep = false overrides systemd.
+        let s = state(&raw("keep = false"), &ctx, Some("/var/lib/gaugewise")).unwrap();
+        assert_eq!(s.dir, None);
+        let err =
+            |text: &str, sd: Option<&str>| state(&raw(text), &ctx, sd).unwrap_err().to_string();
+        assert!(err("keep = true", None).contains("state.dir"));
+        assert!(err("keep = false\ndir = \"x\"", None).contains("state.dir"));
+        assert!(
+            err("save_every_s = 0.5", None).contains("state.save_every_s: must be at least 1 s")
+        );
+        assert!(err("save_every_s = 0", None).contains("state.save_every_s"));
+        assert!(err("dir = \"\"", None).contains("state.dir: is empty"));
+        // In the whole file, the key errors name the file.
+        let m = message(&full("[state]\nsave_every = 60\n"));
+        assert!(
+            m.contains("gw.toml") && m.contains("state.save_every"),
+            "{m}"
+        );
+        let d = load(&full("[state]\ndir = \"/srv/gw-state\"\n")).unwrap();
+        assert!(
+            d.describe()
+                .contains("state: kept in /srv/gw-state (from state.dir)"),
+            "{}",
+            d.describe()
+        );
+    }
+
+    #[test]
     fn metrics_are_off_unless_the_table_is_given() {
         let d = load(&full("")).unwrap();
         assert_eq!(d.metrics, None);

@@ -169,9 +169,21 @@ pub(super) async fn load_checkpoint(
         }
     };
     let dir = state.dir.display().to_string();
-    let loaded = tokio::task::spawn_blocking(move || store.load::<Saved>(&name)).await;
-    let saved = match loaded {
-        Ok(Ok(Some(Loaded::Restored(saved)))) => {
+    let own = name.clone();
+    let loaded = tokio::task::spawn_blocking(move || {
+        let mine = store.load::<Saved>(&name);
+        (mine, others(&store, &name))
+    })
+    .await;
+    let (mine, others) = match loaded {
+        Ok(pair) => pair,
+        Err(e) => {
+            error!("reading the saved channel state failed ({e}); starting fresh");
+            return (Some(saver), None);
+        }
+    };
+    let mut saved = match mine {
+        Ok(Some(Loaded::Restored(saved))) => {
             let age = super::wall_clock() - saved.saved_at;
             info!(
                 dir = %dir,
@@ -181,24 +193,91 @@ pub(super) async fn load_checkpoint(
             );
             Some(saved)
         }
-        Ok(Ok(Some(Loaded::Discarded(d)))) => {
+        Ok(Some(Loaded::Discarded(d))) => {
             warn!("{d}");
             None
         }
-        Ok(Ok(None)) => {
-            info!(dir = %dir, "no saved channel state: starting fresh");
-            None
-        }
-        Ok(Err(e)) => {
-            warn!("cannot read the saved channel state ({e}); starting fresh, the next save replaces it");
+        Ok(None) => {
+            info!(dir = %dir, checkpoint = %own, "no saved channel state of this instance");
             None
         }
         Err(e) => {
-            error!("reading the saved channel state failed ({e}); starting fresh");
+            warn!("cannot read the saved channel state ({e}); starting fresh, the next save replaces it");
             None
         }
     };
+    if !others.is_empty() {
+        // Files of other instance layouts in the same directory (after `[instance] count` changed): channels
+        // this instance now owns and has no state for are taken from the newest of them.
+        let merged = merge(saved.take(), others, instance);
+        info!(
+            dir = %dir,
+            channels = merged.channels.len(),
+            "channel state merged with the checkpoints of other instance layouts"
+        );
+        saved = Some(merged);
+    }
     (Some(saver), saved)
+}
+
+/// The other instance layouts' checkpoints in the store's directory (`channels`, `channels-I-of-N`), read
+/// without disturbing them: another instance may own and be writing them.
+fn others(store: &Store, own: &str) -> Vec<Saved> {
+    let Ok(dir) = std::fs::read_dir(store.dir()) else {
+        return Vec::new();
+    };
+    let mut found = Vec::new();
+    for entry in dir.flatten() {
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let ours = name == "channels" || (name.starts_with("channels-") && name.contains("-of-"));
+        if !ours || name == own || name.contains('.') {
+            continue;
+        }
+        match store.inspect::<Saved>(&name) {
+            Ok(Some(Ok(saved))) => found.push(saved),
+            Ok(Some(Err(problem))) => {
+                debug!(file = %name, "other layout's checkpoint unusable: {problem}")
+            }
+            _ => {}
+        }
+    }
+    found
+}
+
+/// This instance's own saved channels, plus those it owns from `others` that it has no state for (the newest
+/// copy of each).
+fn merge(mine: Option<Saved>, others: Vec<Saved>, instance: &shard::Instance) -> Saved {
+    let mut out = mine.unwrap_or(Saved {
+        saved_at: f64::NEG_INFINITY,
+        channels: Vec::new(),
+    });
+    let mut have: std::collections::HashMap<String, f64> = out
+        .channels
+        .iter()
+        .map(|e| (e.name.clone(), f64::INFINITY))
+        .collect();
+    let mut taken: std::collections::HashMap<String, usize> = std::collections::HashMap::new();
+    for other in others {
+        for e in other.channels {
+            if !instance.owns(&e.name) {
+                continue;
+            }
+            match have.get(&e.name) {
+                Some(&at) if at >= other.saved_at => continue,
+                _ => {}
+            }
+            have.insert(e.name.clone(), other.saved_at);
+            match taken.get(&e.name) {
+                Some(&i) => out.channels[i] = e,
+                None => {
+                    taken.insert(e.name.clone(), out.channels.len());
+                    out.channels.push(e);
+                }
+            }
+        }
+        out.saved_at = out.saved_at.max(other.saved_at);
+    }
+    out
 }
 
 /// Saves every `every` until aborted.
@@ -344,6 +423,44 @@ interval = 1.0
         let r = restore(&cfg, &e).unwrap();
         assert!(r.window_kept);
         assert_eq!(r.channel.learning_target(), c.learning_target());
+    }
+
+    #[test]
+    fn other_layouts_fill_in_only_what_this_instance_owns_and_lacks() {
+        let cfg = config(BASE);
+        let me = shard::Instance { index: 0, count: 2 };
+        let names: Vec<String> = (0..40).map(|i| format!("TT-{i}")).collect();
+        let mine_names: Vec<&String> = names.iter().filter(|n| me.owns(n)).take(3).collect();
+        let foreign = names.iter().find(|n| !me.owns(n)).unwrap();
+        let (c, _) = fed(&cfg, "TT-101", 5);
+        let at = |name: &str, last_received: f64| entry(&cfg, name, &c, None, last_received);
+        let mine = Saved {
+            saved_at: 30.0,
+            channels: vec![at(mine_names[0], 3.0)],
+        };
+        let older = Saved {
+            saved_at: 10.0,
+            channels: vec![
+                at(mine_names[0], 1.0),
+                at(mine_names[1], 1.0),
+                at(foreign, 1.0),
+            ],
+        };
+        let newer = Saved {
+            saved_at: 20.0,
+            channels: vec![at(mine_names[1], 2.0), at(mine_names[2], 2.0)],
+        };
+        let got = merge(Some(mine), vec![older, newer], &me);
+        let by: std::collections::HashMap<&str, f64> = got
+            .channels
+            .iter()
+            .map(|e| (e.name.as_str(), e.last_received))
+            .collect();
+        assert_eq!(by.len(), 3, "{by:?}");
+        assert_eq!(by[mine_names[0].as_str()], 3.0, "its own copy wins");
+        assert_eq!(by[mine_names[1].as_str()], 2.0, "the newest other copy");
+        assert_eq!(by[mine_names[2].as_str()], 2.0);
+        assert!(!by.contains_key(foreign.as_str()), "not this instance's");
     }
 
     #[test]

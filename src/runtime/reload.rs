@@ -66,6 +66,8 @@ pub fn plan(running: &DaemonConfig, new: &DaemonConfig) -> Plan {
     );
     differs("limits", running.max_channels == new.max_channels);
     differs("metrics", running.metrics == new.metrics);
+    // The checkpoint's directory and period are fixed for a run: its saver holds the directory it loaded from.
+    differs("state", running.state == new.state);
     // Applying it in place would hand channels between running instances with no one owning them in between.
     differs("instance", running.instance == new.instance);
     Plan {
