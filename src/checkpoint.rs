@@ -336,6 +336,44 @@ impl Store {
         Ok(bytes.len() as u64)
     }
 
+    /// [`Store::save`] for a payload that is already MessagePack, given in parts written one after the other (so
+    /// a large payload assembled from pieces is never copied into one buffer). The caller is responsible for the
+    /// parts forming one MessagePack value that its loader can read.
+    pub fn save_parts(&self, name: &str, parts: &[&[u8]]) -> Result<u64, CheckpointError> {
+        let target = self.path(name)?;
+        let payload_len: u64 = parts.iter().map(|p| p.len() as u64).sum();
+        if payload_len > self.max_payload {
+            return Err(CheckpointError::TooLarge {
+                name: name.to_string(),
+                size: payload_len,
+                limit: self.max_payload,
+            });
+        }
+        let mut crc = crc32fast::Hasher::new();
+        for p in parts {
+            crc.update(p);
+        }
+        let header = header_for(self.schema, payload_len, crc.finalize());
+        fs::create_dir_all(&self.dir)
+            .map_err(|e| CheckpointError::writing("create directory", &self.dir, e))?;
+        let (tmp_path, file) = self.create_temp(name)?;
+        let mut all: Vec<&[u8]> = Vec::with_capacity(parts.len() + 1);
+        all.push(&header);
+        all.extend_from_slice(parts);
+        let written = write_parts_and_sync(file, &all)
+            .map_err(|(op, e)| CheckpointError::writing(op, &tmp_path, e))
+            .and_then(|()| {
+                fs::rename(&tmp_path, &target)
+                    .map_err(|e| CheckpointError::writing("rename into place", &target, e))
+            });
+        if let Err(e) = written {
+            let _ = fs::remove_file(&tmp_path);
+            return Err(e);
+        }
+        sync_dir(&self.dir)?;
+        Ok(HEADER_LEN as u64 + payload_len)
+    }
+
     /// Reads checkpoint `name`. `Ok(None)`: there is none. A corrupt or incompatible file is moved aside and
     /// reported as [`Loaded::Discarded`]. `Err` only when the file exists but cannot be read at all (permissions,
     /// I/O error), in which case it is left where it is.
@@ -491,12 +529,16 @@ fn check_name(name: &str) -> Result<(), CheckpointError> {
 }
 
 fn header(schema: u32, payload: &[u8]) -> [u8; HEADER_LEN] {
+    header_for(schema, payload.len() as u64, crc32fast::hash(payload))
+}
+
+fn header_for(schema: u32, payload_len: u64, payload_crc: u32) -> [u8; HEADER_LEN] {
     let mut h = [0u8; HEADER_LEN];
     h[0..8].copy_from_slice(&MAGIC);
     h[8..12].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
     h[12..16].copy_from_slice(&schema.to_le_bytes());
-    h[16..24].copy_from_slice(&(payload.len() as u64).to_le_bytes());
-    h[24..28].copy_from_slice(&crc32fast::hash(payload).to_le_bytes());
+    h[16..24].copy_from_slice(&payload_len.to_le_bytes());
+    h[24..28].copy_from_slice(&payload_crc.to_le_bytes());
     let header_crc = crc32fast::hash(&h[0..28]);
     h[28..32].copy_from_slice(&header_crc.to_le_bytes());
     h
@@ -572,6 +614,17 @@ fn read_bounded(path: &Path, limit: u64) -> io::Result<Option<Vec<u8>>> {
     } else {
         Some(bytes)
     })
+}
+
+fn write_parts_and_sync(file: File, parts: &[&[u8]]) -> Result<(), (&'static str, io::Error)> {
+    let mut w = io::BufWriter::with_capacity(1 << 16, file);
+    for p in parts {
+        w.write_all(p).map_err(|e| ("write temporary file", e))?;
+    }
+    let file = w
+        .into_inner()
+        .map_err(|e| ("write temporary file", e.into_error()))?;
+    file.sync_all().map_err(|e| ("fsync temporary file", e))
 }
 
 fn write_and_sync(mut file: File, bytes: &[u8]) -> Result<(), (&'static str, io::Error)> {
@@ -681,7 +734,18 @@ impl Saver {
     }
 
     pub fn save<T: Serialize + ?Sized>(&mut self, value: &T) -> SaveOutcome<'_> {
-        match self.store.save(&self.name, value) {
+        let result = self.store.save(&self.name, value);
+        self.record(result)
+    }
+
+    /// [`Saver::save`] of a payload given as MessagePack parts ([`Store::save_parts`]).
+    pub fn save_parts(&mut self, parts: &[&[u8]]) -> SaveOutcome<'_> {
+        let result = self.store.save_parts(&self.name, parts);
+        self.record(result)
+    }
+
+    fn record(&mut self, result: Result<u64, CheckpointError>) -> SaveOutcome<'_> {
+        match result {
             Ok(bytes) => {
                 let failures = std::mem::take(&mut self.failures);
                 self.last_failure = None;
@@ -816,6 +880,31 @@ mod tests {
         assert!(nan.is_nan());
         // Only the checkpoints are left: no temporary files.
         assert_eq!(entries(store.dir()), vec!["channels", "nan"]);
+    }
+
+    #[test]
+    fn a_payload_saved_in_parts_reads_like_one_saved_whole() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::new(dir.path(), 3);
+        let value: BTreeMap<String, Vec<f64>> = [
+            ("a".to_string(), vec![1.0, f64::NAN]),
+            ("b".to_string(), vec![]),
+        ]
+        .into();
+        let bytes = rmp_serde::to_vec_named(&value).unwrap();
+        let (x, y) = bytes.split_at(5);
+        let size = store.save_parts("parts", &[x, &[], y]).unwrap();
+        assert_eq!(size, (HEADER_LEN + bytes.len()) as u64);
+        store.save("whole", &value).unwrap();
+        assert_eq!(
+            std::fs::read(dir.path().join("parts")).unwrap(),
+            std::fs::read(dir.path().join("whole")).unwrap()
+        );
+        let small = Store::new(dir.path(), 3).with_max_payload_bytes(4);
+        assert!(matches!(
+            small.save_parts("parts", &[x, y]),
+            Err(CheckpointError::TooLarge { .. })
+        ));
     }
 
     #[test]

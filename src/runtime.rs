@@ -149,8 +149,12 @@ enum Control {
     /// A reload changed the channel configuration: restart the channels whose model or flag design changed, keep
     /// the others, and report which were restarted.
     Channels(Arc<ChannelConfig>, oneshot::Sender<Vec<reload::Restarted>>),
-    /// A copy of every channel's state, for a checkpoint.
-    Snapshot(oneshot::Sender<Vec<persist::SavedEntry>>),
+    /// Channels `from..from + max` encoded for a checkpoint, and whether more follow.
+    Snapshot {
+        from: usize,
+        max: usize,
+        reply: oneshot::Sender<(persist::Chunk, bool)>,
+    },
 }
 
 /// An input the daemon refused: why (a short fixed label) and what it was about (channel, else topic).
@@ -546,7 +550,7 @@ pub async fn run_service(
                 Ok(end) => {
                     total += end.channels;
                     match (saved.as_mut(), end.saved) {
-                        (Some(all), Some(mine)) => all.extend(mine),
+                        (Some(all), Some(mine)) => all.push(mine),
                         _ => saved = None,
                     }
                 }
@@ -566,13 +570,11 @@ pub async fn run_service(
     // The last save runs beside the flush below; a worker that did not stop cleanly leaves the last periodic
     // checkpoint in place rather than a partial one.
     let final_save = match (saver, final_state) {
-        (Some(saver), Some(channels)) => Some(tokio::spawn(persist::save_checkpoint(
+        (Some(saver), Some(chunks)) => Some(tokio::spawn(persist::save_checkpoint(
             shared.clone(),
             saver,
-            persist::Saved {
-                saved_at: wall_clock(),
-                channels,
-            },
+            wall_clock(),
+            chunks,
         ))),
         (Some(_), None) => {
             warn!("channel state not saved at shutdown: a worker did not stop in time; the last checkpoint stays");
@@ -921,7 +923,7 @@ struct FitDone {
 struct WorkerEnd {
     channels: usize,
     /// Its channels' final state, when state is kept.
-    saved: Option<Vec<persist::SavedEntry>>,
+    saved: Option<persist::Chunk>,
 }
 
 /// How the channels of a checkpoint were taken back at start.
@@ -1021,8 +1023,10 @@ impl Worker {
                     Control::Channels(config, reply) => {
                         let _ = reply.send(self.reconfigure(config));
                     }
-                    Control::Snapshot(reply) => {
-                        let _ = reply.send(self.snapshot());
+                    Control::Snapshot { from, max, reply } => {
+                        let chunk = self.snapshot(from, max, persist::CHUNK_BYTES);
+                        let more = from + chunk.count < self.channels.len();
+                        let _ = reply.send((chunk, more));
                     }
                 },
                 _ = timer.tick(), if self.stale.enabled() => {
@@ -1047,7 +1051,7 @@ impl Worker {
                 .settings
                 .state
                 .is_some()
-                .then(|| self.snapshot()),
+                .then(|| self.snapshot(0, usize::MAX, usize::MAX)),
         }
     }
 
@@ -1370,20 +1374,29 @@ impl Worker {
         }
     }
 
-    /// Every channel's state, for a checkpoint.
-    fn snapshot(&self) -> Vec<persist::SavedEntry> {
-        self.channels
-            .iter()
-            .map(|c| {
-                persist::entry(
-                    &self.config,
-                    &c.name,
-                    &c.channel,
-                    c.learner.as_deref(),
-                    c.last_received,
-                )
-            })
-            .collect()
+    /// The state of up to `max` channels from index `from`, encoded for a checkpoint; it stops early once the
+    /// encoding reaches `max_bytes`.
+    fn snapshot(&self, from: usize, max: usize, max_bytes: usize) -> persist::Chunk {
+        let mut chunk = persist::Chunk::default();
+        for c in self.channels.iter().skip(from).take(max) {
+            if chunk.bytes.len() >= max_bytes {
+                break;
+            }
+            let e = persist::entry(
+                &self.config,
+                &c.name,
+                &c.channel,
+                c.learner.as_deref(),
+                c.last_received,
+            );
+            if !chunk.push(&e) {
+                error!(channel = %c.name, "this channel's state cannot be encoded; it is left out of the checkpoint");
+                // Counted as handled, so the next chunk starts after it.
+                chunk.count += 1;
+                chunk.skipped += 1;
+            }
+        }
+        chunk
     }
 
     fn report_stale(&mut self, i: usize, now: f64) {

@@ -19,10 +19,9 @@ mod common;
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
 use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
 use gaugewise::channel::Channel;
-use gaugewise::checkpoint::Store;
 use gaugewise::config::Config;
 use gaugewise::publish::OutputMessage;
-use gaugewise::runtime::persist::{Saved, SCHEMA};
+use gaugewise::runtime::persist::{self, Saved};
 use rumqttc::QoS;
 use std::collections::HashMap;
 use std::path::Path;
@@ -172,11 +171,7 @@ fn reference(t0: f64, n: usize) -> HashMap<(String, u64), (f64, f64)> {
 
 /// The checkpoint as the daemon last wrote it (read without disturbing the daemon's saves).
 fn checkpoint(dir: &Path) -> Option<Saved> {
-    Store::new(dir, SCHEMA)
-        .inspect::<Saved>("channels")
-        .ok()
-        .flatten()
-        .and_then(Result::ok)
+    persist::read(dir, "channels")
 }
 
 /// Waits until the checkpoint holds sample `k` of every channel.
