@@ -4,7 +4,9 @@
 //! - SIGKILL mid-stream, then restart: every channel continues from the last periodic checkpoint, and every
 //!   estimate after the restart is within one std of an uninterrupted run (the target; the reference is
 //!   `Channel` fed every sample without a break, the path `replay` takes). Samples the killed daemon took in after
-//!   its last checkpoint are lost to its state, which is why the bound is the std and not equality.
+//!   its last checkpoint are lost to its state, which is why the bound is the std and not equality. Samples sent
+//!   while it is down wait in its persistent session and are filtered after the restart; nothing is published
+//!   twice.
 //! - SIGTERM, then restart: the state saved at shutdown holds every sample, so the continuation equals the
 //!   uninterrupted run to rounding.
 //!
@@ -119,13 +121,7 @@ fn payload(t: f64, v: Option<f64>) -> String {
 }
 
 /// Publishes samples `ks` of every channel and returns the outputs they produced, by channel and time.
-fn feed(
-    broker: &TestBroker,
-    outputs: &std::sync::mpsc::Receiver<common::broker::Message>,
-    t0: f64,
-    ks: std::ops::Range<usize>,
-    daemon: &Daemon,
-) -> HashMap<(String, u64), OutputMessage> {
+fn publish(broker: &TestBroker, t0: f64, ks: std::ops::Range<usize>) -> usize {
     let publisher = TestClient::connect(broker.port());
     let n = ks.len() * CHANNELS.len();
     for k in ks {
@@ -140,15 +136,38 @@ fn feed(
         }
     }
     assert!(publisher.flush(WAIT), "inputs not acknowledged");
+    publisher.disconnect();
+    n
+}
+
+/// Outputs by channel and time.
+type Outputs = HashMap<(String, u64), OutputMessage>;
+
+fn collect(
+    outputs: &std::sync::mpsc::Receiver<common::broker::Message>,
+    n: usize,
+    daemon: &Daemon,
+) -> Outputs {
     let got = recv_n(outputs, n, Duration::from_secs(20));
     assert_eq!(got.len(), n, "outputs missing; log:\n{}", daemon.log());
-    publisher.disconnect();
     got.iter()
         .map(|m| {
             let o = OutputMessage::parse(&m.payload).expect("output JSON");
             ((o.channel.clone(), o.time.to_bits()), o)
         })
         .collect()
+}
+
+/// Publishes samples `ks` of every channel and returns the outputs they produced, by channel and time.
+fn feed(
+    broker: &TestBroker,
+    outputs: &std::sync::mpsc::Receiver<common::broker::Message>,
+    t0: f64,
+    ks: std::ops::Range<usize>,
+    daemon: &Daemon,
+) -> Outputs {
+    let n = publish(broker, t0, ks);
+    collect(outputs, n, daemon)
 }
 
 /// The uninterrupted run: each channel fed samples 0..n without a break.
@@ -257,14 +276,25 @@ fn kill_and_restart_against(broker: &TestBroker) {
         assert!((out.estimate.unwrap() - est).abs() <= 1e-9 * est.abs().max(1.0));
     }
 
-    // Run 2: restored from the last checkpoint; samples 126..220.
+    // While it is down, samples 126..132 arrive: the broker keeps them for its persistent session.
+    let queued = publish(broker, t0, 126..132);
+
+    // Run 2: restored from the last checkpoint; the queued samples first, then 132..220.
     let mut daemon = start(broker, &client_id, state.path(), 1.0, &status);
     let log = daemon.log();
     assert!(
         log.contains("channels taken back from the saved state") && log.contains("restored=3"),
         "{log}"
     );
-    let after = feed(broker, &outputs, t0, 126..220, &daemon);
+    let mut after = collect(&outputs, queued, &daemon);
+    after.extend(feed(broker, &outputs, t0, 132..220, &daemon));
+    // Nothing the first run published is published again (its samples were taken from the broker).
+    for key in after.keys() {
+        assert!(
+            !before.contains_key(key) && !before_kill.contains_key(key),
+            "{key:?} published twice"
+        );
+    }
     let mut worst: f64 = 0.0;
     for (key, out) in &after {
         let (est, _) = reference[key];
