@@ -2530,7 +2530,8 @@ fn case_reestimate_alternating(
             fits_span: fits
                 .first()
                 .zip(fits.last())
-                .map(|(a, z)| (a.0 - start, z.1 - start)),
+                // The first poll that saw a fit says it finished after the poll before, which may precede the block.
+                .map(|(a, z)| ((a.0 - start).max(0.0), z.1 - start)),
             off_fits: fits_in(&steps[OFF], start, end).map(|s| s.2).sum(),
             own: own_between(&polls[b.daemon], from, end),
             ticks,

@@ -875,8 +875,14 @@ fn refusal_text(code: ConnectReturnCode) -> &'static str {
         ConnectReturnCode::RefusedProtocolVersion => "protocol version not supported",
         ConnectReturnCode::BadClientId => "client id refused",
         ConnectReturnCode::ServiceUnavailable => "service unavailable",
-        ConnectReturnCode::BadUserNamePassword => "bad user name or password",
-        ConnectReturnCode::NotAuthorized => "not authorised",
+        ConnectReturnCode::BadUserNamePassword => {
+            "bad user name or password: check broker.username and the password (password or password_file)"
+        }
+        // Mosquitto answers a wrong password with this code too, not with the one above.
+        ConnectReturnCode::NotAuthorized => {
+            "not authorised: a wrong user name or password, or this client may not connect; check \
+             broker.username, the password and the broker's access rules"
+        }
     }
 }
 

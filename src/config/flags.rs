@@ -73,30 +73,56 @@ impl RawDetector {
     }
 }
 
-/// Which flag design each channel runs.
+/// Per-channel values chosen by glob: the first override whose pattern matches the channel name wins, else the
+/// default. `[flags]` and `[reestimate]` both use it, with their own value type.
 #[derive(Debug, Clone, Default)]
-pub struct FlagRules {
-    pub default: FlagDesign,
-    /// Tried in order; the first whose pattern matches the channel name wins.
-    pub overrides: Vec<(String, FlagDesign)>,
+pub struct GlobRules<T> {
+    pub default: T,
+    /// Tried in order, with their patterns as written.
+    pub overrides: Vec<(String, T)>,
     matchers: Vec<GlobMatcher>,
 }
 
-impl PartialEq for FlagRules {
+impl<T: PartialEq> PartialEq for GlobRules<T> {
+    /// Compiled matchers follow from the patterns, so they are not compared.
     fn eq(&self, other: &Self) -> bool {
         self.default == other.default && self.overrides == other.overrides
     }
 }
 
-impl FlagRules {
-    /// The design of the first override whose pattern matches `channel`, else the default.
-    pub fn design_for(&self, channel: &str) -> &FlagDesign {
-        for (m, (_, design)) in self.matchers.iter().zip(&self.overrides) {
+impl<T> GlobRules<T> {
+    /// Rules from a default and (pattern, compiled matcher, value) overrides in order.
+    pub(super) fn new(default: T, overrides: Vec<(String, GlobMatcher, T)>) -> Self {
+        let mut rules = GlobRules {
+            default,
+            overrides: Vec::with_capacity(overrides.len()),
+            matchers: Vec::with_capacity(overrides.len()),
+        };
+        for (pattern, matcher, value) in overrides {
+            rules.matchers.push(matcher);
+            rules.overrides.push((pattern, value));
+        }
+        rules
+    }
+
+    /// The value of the first override whose pattern matches `channel`, else the default.
+    pub fn for_channel(&self, channel: &str) -> &T {
+        for (m, (_, value)) in self.matchers.iter().zip(&self.overrides) {
             if m.is_match(channel) {
-                return design;
+                return value;
             }
         }
         &self.default
+    }
+}
+
+/// Which flag design each channel runs.
+pub type FlagRules = GlobRules<FlagDesign>;
+
+impl FlagRules {
+    /// The design of the first override whose pattern matches `channel`, else the default.
+    pub fn design_for(&self, channel: &str) -> &FlagDesign {
+        self.for_channel(channel)
     }
 }
 
@@ -119,7 +145,6 @@ pub(super) fn rules(
     let default = design(raw, FlagDesign::default(), "flags", ctx)?;
     check(&default, intervals, "flags", ctx)?;
     let mut overrides = Vec::with_capacity(raw.overrides.len());
-    let mut matchers = Vec::with_capacity(raw.overrides.len());
     for (i, o) in raw.overrides.iter().enumerate() {
         let path = format!("flags.override[{i}]");
         let (pattern, matcher) = override_pattern(
@@ -131,14 +156,9 @@ pub(super) fn rules(
         )?;
         let d = design(o, default, &path, ctx)?;
         check(&d, intervals, &path, ctx)?;
-        matchers.push(matcher);
-        overrides.push((pattern, d));
+        overrides.push((pattern, matcher, d));
     }
-    Ok(FlagRules {
-        default,
-        overrides,
-        matchers,
-    })
+    Ok(FlagRules::new(default, overrides))
 }
 
 /// The `match` glob of an override table of `section` (`flags`, `reestimate`) at `path`, compiled; refuses a

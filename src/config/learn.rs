@@ -5,7 +5,6 @@
 use super::daemon::Ctx;
 use super::ConfigError;
 use crate::reestimate::LearnSettings;
-use globset::GlobMatcher;
 use serde::Deserialize;
 
 #[derive(Debug, Default, Clone, Deserialize)]
@@ -24,30 +23,13 @@ pub(super) struct RawLearn {
     overrides: Vec<RawLearn>,
 }
 
-/// Which channels re-estimate, and how.
-#[derive(Debug, Clone, Default)]
-pub struct LearnRules {
-    /// None: re-estimation off for channels no override turns on.
-    pub default: Option<LearnSettings>,
-    pub overrides: Vec<(String, Option<LearnSettings>)>,
-    matchers: Vec<GlobMatcher>,
-}
-
-impl PartialEq for LearnRules {
-    fn eq(&self, other: &Self) -> bool {
-        self.default == other.default && self.overrides == other.overrides
-    }
-}
+/// Which channels re-estimate, and how; a None value: off for the channels it matches.
+pub type LearnRules = super::flags::GlobRules<Option<LearnSettings>>;
 
 impl LearnRules {
     /// The settings of the first override whose pattern matches `channel`, else the default; None: off.
     pub fn settings_for(&self, channel: &str) -> Option<&LearnSettings> {
-        for (m, (_, s)) in self.matchers.iter().zip(&self.overrides) {
-            if m.is_match(channel) {
-                return s.as_ref();
-            }
-        }
-        self.default.as_ref()
+        self.for_channel(channel).as_ref()
     }
 }
 
@@ -66,7 +48,6 @@ pub(super) fn rules(raw: Option<&RawLearn>, ctx: &Ctx) -> Result<LearnRules, Con
     }
     let (on, base) = settings(raw, (false, LearnSettings::default()), "reestimate", ctx)?;
     let mut overrides = Vec::with_capacity(raw.overrides.len());
-    let mut matchers = Vec::with_capacity(raw.overrides.len());
     for (i, o) in raw.overrides.iter().enumerate() {
         let path = format!("reestimate.override[{i}]");
         let (pattern, matcher) = super::flags::override_pattern(
@@ -77,14 +58,9 @@ pub(super) fn rules(raw: Option<&RawLearn>, ctx: &Ctx) -> Result<LearnRules, Con
             ctx,
         )?;
         let (o_on, s) = settings(o, (on, base), &path, ctx)?;
-        matchers.push(matcher);
-        overrides.push((pattern, o_on.then_some(s)));
+        overrides.push((pattern, matcher, o_on.then_some(s)));
     }
-    Ok(LearnRules {
-        default: on.then_some(base),
-        overrides,
-        matchers,
-    })
+    Ok(LearnRules::new(on.then_some(base), overrides))
 }
 
 fn settings(
