@@ -155,7 +155,8 @@ struct Params {
     reest_block_s: u64,
     /// GWBENCH_REEST_PAIRS=3: alternating only: measured pairs of blocks (one on, one off) after the warm-up.
     reest_pairs: usize,
-    /// GWBENCH_REEST_SKIP_S=2: alternating only: seconds at the start of every block left out of the measurement.
+    /// GWBENCH_REEST_SKIP_S=0: alternating only: seconds at the start of every block left out of the measurement
+    /// (0 by default: the on daemon's fit round starts with its block, and the target counts it).
     reest_skip: f64,
 }
 
@@ -205,7 +206,7 @@ impl Params {
             reest_reps: env_or("GWBENCH_REEST_REPS", 2)?,
             reest_block_s: env_or("GWBENCH_REEST_BLOCK_S", 60)?,
             reest_pairs: env_or("GWBENCH_REEST_PAIRS", 3)?,
-            reest_skip: env_or("GWBENCH_REEST_SKIP_S", 2.0)?,
+            reest_skip: env_or("GWBENCH_REEST_SKIP_S", 0.0)?,
         };
         if !(1..=20).contains(&p.reest_reps) || !(1..=20).contains(&p.reest_pairs) {
             return Err("GWBENCH_REEST_REPS and GWBENCH_REEST_PAIRS must be 1..20".into());
@@ -2272,7 +2273,7 @@ impl AltRow {
     }
 }
 
-/// The answered polls of a daemon as (previous poll, poll, fits finished in between), those seen in [from, to).
+/// The steps of `fit_steps` whose later poll falls in [from, to).
 fn fits_in(
     steps: &[(f64, f64, u64)],
     from: f64,
