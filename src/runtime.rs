@@ -77,6 +77,9 @@ use tracing::{debug, error, info, warn};
 pub const FLUSH_TIMEOUT: Duration = Duration::from_secs(3);
 /// How long shutdown waits for the workers to drain their queues.
 const DRAIN_TIMEOUT: Duration = Duration::from_secs(1);
+/// The extra wait when they also encode their channels for the last checkpoint: 100,000 channels take about
+/// 0.35 s on the 2-core test machine (benches/checkpoint.rs), a slower gateway a few times that.
+const FINAL_STATE_TIMEOUT: Duration = Duration::from_secs(2);
 /// At most one log line per rejection reason per this period.
 const REJECT_LOG_PERIOD: Duration = Duration::from_secs(10);
 /// Reconnect attempts while shutting down are capped at this pause: there are only seconds left.
@@ -542,7 +545,12 @@ pub async fn run_service(
     if let Some(t) = &saver_task {
         t.abort();
     }
-    let drained = tokio::time::timeout(DRAIN_TIMEOUT, async {
+    let drain_timeout = if shared.settings.state.is_some() {
+        DRAIN_TIMEOUT + FINAL_STATE_TIMEOUT
+    } else {
+        DRAIN_TIMEOUT
+    };
+    let drained = tokio::time::timeout(drain_timeout, async {
         let mut total = 0;
         let mut saved = Some(Vec::new());
         for t in worker_tasks {
@@ -563,7 +571,7 @@ pub async fn run_service(
     let (channel_count, final_state) = match drained {
         Ok((n, saved)) => (n, saved),
         Err(_) => {
-            warn!("workers did not drain their queues within {DRAIN_TIMEOUT:?}");
+            warn!("workers did not drain their queues within {drain_timeout:?}");
             (shared.channels.load(Ordering::Relaxed), None)
         }
     };

@@ -19,7 +19,7 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::OutputMessage;
@@ -29,39 +29,12 @@ use std::collections::HashMap;
 use std::path::Path;
 use std::time::{Duration, Instant, SystemTime};
 
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.0004
-level_var = 1e-6
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.0
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-
-[[channels.override]]
-match = "FT-201"
-model = "arma(1,1)"
-interval = 10.0
-mean = 12.0
-ar = [0.8]
-ma = [-0.3]
-var = 0.5
-
-[[channels.override]]
-match = "LT-301"
-model = "trend"
-interval = 10.0
-obs_var = 0.0004
-level_var = 1e-6
-slope_var = 1e-8
-"#;
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.0004, level_var = 1e-6),
+    tt101_lag!(mean = 72.0),
+    ft201_arma11!(),
+    lt_trend!("LT-301"),
+);
 
 const CHANNELS: [&str; 3] = ["TT-101", "FT-201", "LT-301"];
 
@@ -69,7 +42,7 @@ fn config_text(port: u16, client_id: &str, state_dir: &Path, save_every_s: f64) 
     format!(
         "{MODELS}\n[state]\ndir = {:?}\nsave_every_s = {save_every_s}\n{}",
         state_dir.display().to_string(),
-        plant_daemon_sections(port, client_id, "")
+        PlantSections::new(port, client_id).render()
     )
 }
 

@@ -8,7 +8,7 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status, Daemon};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::OutputMessage;
@@ -25,71 +25,20 @@ use std::time::{Duration, Instant};
 const CHANNELS: [&str; 3] = ["TT-101", "FT-201", "LT-301"];
 
 /// The channel models of the test: one of each continuous-time family plus ARMA, as in `config/plant.toml`.
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.5
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-
-[[channels.override]]
-match = "FT-201"
-model = "arma(1,1)"
-interval = 10.0
-mean = 12.0
-ar = [0.8]
-ma = [-0.3]
-var = 0.5
-
-[[channels.override]]
-match = "LT-30?"
-model = "trend"
-interval = 10.0
-obs_var = 0.0004
-level_var = 1e-6
-slope_var = 1e-8
-"#;
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.25, level_var = 0.01),
+    tt101_lag!(mean = 72.5),
+    ft201_arma11!(),
+    lt_trend!("LT-30?"),
+);
 
 fn config_text(port: u16, client_id: &str, stale_after_s: f64) -> String {
-    format!(
-        r#"{MODELS}
-[broker]
-host = "127.0.0.1"
-port = {port}
-client_id = "{client_id}"
-keep_alive_s = 5
-reconnect_min_s = 0.1
-reconnect_max_s = 1.0
-
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
-[output]
-topic = "brackenfield/clean/{{channel}}"
-qos = 1
-
-[status]
-topic = "brackenfield/status/{client_id}"
-
-[timing]
-stale_after_s = {stale_after_s}
-stale_every_s = 0.5
-"#
-    )
+    let sections = PlantSections {
+        reconnect: Some((0.1, 1.0)),
+        stale: Some((stale_after_s, 0.5)),
+        ..PlantSections::new(port, client_id)
+    };
+    format!("{MODELS}{}", sections.render())
 }
 
 /// One input sample: channel, time, value (None: JSON null, a missing sample).

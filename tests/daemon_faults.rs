@@ -50,22 +50,10 @@ use std::sync::mpsc::Receiver;
 use std::time::{Duration, Instant};
 
 /// The plant's vessel temperature (a first-order lag) and the default local level for every other channel.
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.5
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-"#;
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.25, level_var = 0.01),
+    tt101_lag!(mean = 72.5),
+);
 
 /// Backoff of the failing tests: short enough that a 6 s window holds several attempts, long enough that a tight
 /// loop (hundreds of attempts) cannot hide inside the bound.

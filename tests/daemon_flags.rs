@@ -6,29 +6,17 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::{FlagsMessage, OutputMessage};
 use rumqttc::QoS;
 use std::time::Duration;
 
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.0004
-level_var = 1e-6
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.0
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.0004, level_var = 1e-6),
+    tt101_lag!(mean = 72.0),
+    r#"
 [flags.spike]
 off_delay = 0.0
 
@@ -37,17 +25,15 @@ match = "LT-*"
 [flags.override.range]
 low = 0.0
 high = 5.0
-"#;
+"#
+);
 
 fn config_text(port: u16, client_id: &str) -> String {
-    format!(
-        "{MODELS}{}",
-        plant_daemon_sections(
-            port,
-            client_id,
-            "flags_topic = \"brackenfield/flags/{channel}\""
-        )
-    )
+    let sections = PlantSections {
+        output_extra: "flags_topic = \"brackenfield/flags/{channel}\"",
+        ..PlantSections::new(port, client_id)
+    };
+    format!("{MODELS}{}", sections.render())
 }
 
 /// 40 samples per channel; TT-101 gets a 30-degree spike at sample 25, LT-301 an out-of-range value at 30.

@@ -8,124 +8,26 @@
 mod common;
 
 use common::broker::{free_port, recv_n, wait_for_port, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use rumqttc::QoS;
 use std::collections::BTreeMap;
 use std::io::{Read, Write};
 use std::net::TcpStream;
 use std::os::unix::net::UnixDatagram;
-use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.5
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-"#;
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.25, level_var = 0.01),
+    tt101_lag!(mean = 72.5),
+);
 
 fn config(broker_port: u16, metrics_port: u16, client_id: &str) -> String {
-    format!(
-        r#"{MODELS}
-[broker]
-host = "127.0.0.1"
-port = {broker_port}
-client_id = "{client_id}"
-keep_alive_s = 5
-reconnect_min_s = 0.1
-reconnect_max_s = 0.5
-
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
-[output]
-topic = "brackenfield/clean/{{channel}}"
-qos = 1
-
-[status]
-topic = "brackenfield/status/{client_id}"
-
-[timing]
-stale_after_s = 0
-
-[metrics]
-listen = "127.0.0.1:{metrics_port}"
-"#
-    )
-}
-
-/// `gaugewise run` with its configuration and log in a scratch directory; killed if the test ends first.
-struct Daemon {
-    child: Child,
-    log: std::path::PathBuf,
-    _dir: tempfile::TempDir,
-}
-
-impl Daemon {
-    fn start(config: &str, env: &[(&str, &str)]) -> Daemon {
-        let dir = tempfile::tempdir().unwrap();
-        let path = dir.path().join("gaugewise.toml");
-        std::fs::write(&path, config).unwrap();
-        let log = dir.path().join("daemon.log");
-        let child = Command::new(env!("CARGO_BIN_EXE_gaugewise"))
-            .args(["run", "--config"])
-            .arg(&path)
-            .env("GAUGEWISE_LOG", "info")
-            .env_remove("RUST_LOG")
-            .env_remove("NOTIFY_SOCKET")
-            .env_remove("WATCHDOG_USEC")
-            .envs(env.iter().copied())
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(std::fs::File::create(&log).unwrap())
-            .spawn()
-            .expect("start gaugewise run");
-        Daemon {
-            child,
-            log,
-            _dir: dir,
-        }
-    }
-
-    fn log(&self) -> String {
-        std::fs::read_to_string(&self.log).unwrap_or_default()
-    }
-
-    fn stop(&mut self) -> Option<std::process::ExitStatus> {
-        assert!(common::broker::send_signal(self.child.id(), "TERM"));
-        let deadline = Instant::now() + Duration::from_secs(10);
-        while Instant::now() < deadline {
-            if let Some(s) = self.child.try_wait().unwrap() {
-                return Some(s);
-            }
-            std::thread::sleep(Duration::from_millis(20));
-        }
-        None
-    }
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        if self.child.try_wait().ok().flatten().is_none() {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
-        }
-    }
+    let sections = PlantSections {
+        reconnect: Some((0.1, 0.5)),
+        extra: &format!("\n[metrics]\nlisten = \"127.0.0.1:{metrics_port}\"\n"),
+        ..PlantSections::new(broker_port, client_id)
+    };
+    format!("{MODELS}{}", sections.render())
 }
 
 /// A response: status code, header block (lower-cased names), body.
@@ -375,7 +277,7 @@ fn metrics_count_what_the_daemon_does_and_health_is_ok() {
         &format!("brackenfield/status/{client_id}"),
         QoS::AtLeastOnce,
     );
-    let daemon = Daemon::start(&config(broker.port(), port, &client_id), &[]);
+    let daemon = Daemon::start(&config(broker.port(), port, &client_id));
     assert!(
         wait_status(&status, "online", Duration::from_secs(10)).is_some(),
         "no online status; daemon log:\n{}",
@@ -540,7 +442,7 @@ fn broker_down_at_boot_is_ready_but_unhealthy() {
         .set_read_timeout(Some(Duration::from_millis(200)))
         .unwrap();
     let notify = notify_path.display().to_string();
-    let mut daemon = Daemon::start(
+    let mut daemon = Daemon::start_with_env(
         &config(broker_port, port, "gaugewise-test-metrics-down"),
         &[("NOTIFY_SOCKET", notify.as_str())],
     );

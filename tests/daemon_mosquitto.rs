@@ -29,31 +29,11 @@ use std::time::{Duration, Instant};
 const CHANNELS: [&str; 3] = ["TT-101", "FT-201", "LT-301"];
 
 /// Three model families: a first-order lag (TT-101), ARMA(1,1) (FT-201) and the default local level (LT-301).
-const MODELS: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.0004
-level_var = 1e-6
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.5
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-
-[[channels.override]]
-match = "FT-201"
-model = "arma(1,1)"
-interval = 10.0
-mean = 12.0
-ar = [0.8]
-ma = [-0.3]
-var = 0.5
-"#;
+const MODELS: &str = concat!(
+    level_default!(obs_var = 0.0004, level_var = 1e-6),
+    tt101_lag!(mean = 72.5),
+    ft201_arma11!(),
+);
 
 /// How a test wants the daemon connected.
 struct Setup {

@@ -6,7 +6,7 @@
 mod common;
 
 use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, plant_daemon_sections, wait_status, Daemon};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use gaugewise::config::Config;
 use gaugewise::history::Series;
 use gaugewise::replay::Replay;
@@ -29,14 +29,11 @@ min_samples = 100
 "#;
 
 fn config_text(port: u16, client_id: &str) -> String {
-    format!(
-        "{MODELS}{}",
-        plant_daemon_sections(
-            port,
-            client_id,
-            "params_topic = \"brackenfield/params/{channel}\""
-        )
-    )
+    let sections = PlantSections {
+        output_extra: "params_topic = \"brackenfield/params/{channel}\"",
+        ..PlantSections::new(port, client_id)
+    };
+    format!("{MODELS}{}", sections.render())
 }
 
 fn run_against(broker: &TestBroker) {
@@ -171,14 +168,11 @@ interval = 1.0
 "#;
     let broker = TestBroker::embedded();
     let client_id = format!("gaugewise-test-learning-{}", std::process::id());
-    let config = format!(
-        "{LEARN}{}",
-        plant_daemon_sections(
-            broker.port(),
-            &client_id,
-            "flags_topic = \"brackenfield/flags/{channel}\"\nparams_topic = \"brackenfield/params/{channel}\""
-        )
-    );
+    let sections = PlantSections {
+        output_extra: "flags_topic = \"brackenfield/flags/{channel}\"\nparams_topic = \"brackenfield/params/{channel}\"",
+        ..PlantSections::new(broker.port(), &client_id)
+    };
+    let config = format!("{LEARN}{}", sections.render());
     let watcher = TestClient::connect(broker.port());
     let outputs = watcher.subscribe("brackenfield/clean/#", QoS::AtLeastOnce);
     let params = watcher.subscribe("brackenfield/params/#", QoS::AtLeastOnce);

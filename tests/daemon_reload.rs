@@ -10,8 +10,8 @@
 
 mod common;
 
-use common::broker::{recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status};
+use common::broker::{recv_n, TestBroker, TestClient, WAIT};
+use common::daemon::{epoch_now, wait_status, Daemon, PlantSections};
 use gaugewise::channel::Channel;
 use gaugewise::config::Config;
 use gaugewise::publish::OutputMessage;
@@ -19,7 +19,6 @@ use rumqttc::QoS;
 use std::collections::HashMap;
 use std::os::unix::net::UnixDatagram;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
 use std::sync::mpsc::{self, Receiver};
 use std::time::{Duration, Instant};
 
@@ -90,116 +89,15 @@ impl FakeSystemd {
     }
 }
 
-/// `gaugewise run` on a configuration file the test can rewrite, with its log in a file.
-struct Service {
-    child: Child,
-    config: PathBuf,
-    log: PathBuf,
-}
-
-impl Service {
-    fn start(dir: &Path, config: &str, env: &[(&str, &str)]) -> Service {
-        let path = dir.join("gaugewise.toml");
-        std::fs::write(&path, config).unwrap();
-        let log = dir.join("daemon.log");
-        let child = Command::new(env!("CARGO_BIN_EXE_gaugewise"))
-            .args(["run", "--config"])
-            .arg(&path)
-            .env("GAUGEWISE_LOG", "info")
-            .env_remove("RUST_LOG")
-            .env_remove("NOTIFY_SOCKET")
-            .env_remove("WATCHDOG_USEC")
-            .env_remove("WATCHDOG_PID")
-            .envs(env.iter().copied())
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(std::fs::File::create(&log).unwrap())
-            .spawn()
-            .expect("start gaugewise run");
-        Service {
-            child,
-            config: path,
-            log,
-        }
-    }
-
-    fn log(&self) -> String {
-        std::fs::read_to_string(&self.log).unwrap_or_default()
-    }
-
-    /// Waits until the log has `needle` at least `n` times.
-    fn wait_log(&self, needle: &str, n: usize, timeout: Duration) -> bool {
-        let deadline = Instant::now() + timeout;
-        loop {
-            if self.log().matches(needle).count() >= n {
-                return true;
-            }
-            if Instant::now() >= deadline {
-                return false;
-            }
-            std::thread::sleep(Duration::from_millis(20));
-        }
-    }
-
-    fn rewrite(&self, config: &str) {
-        // Written beside and renamed, as an editor or a configuration tool would: never half a file.
-        let tmp = self.config.with_extension("toml.new");
-        std::fs::write(&tmp, config).unwrap();
-        std::fs::rename(&tmp, &self.config).unwrap();
-    }
-
-    fn signal(&self, name: &str) {
-        assert!(send_signal(self.child.id(), name), "kill -{name} failed");
-    }
-
-    fn wait(&mut self, timeout: Duration) -> Option<std::process::ExitStatus> {
-        let deadline = Instant::now() + timeout;
-        loop {
-            if let Some(s) = self.child.try_wait().unwrap() {
-                return Some(s);
-            }
-            if Instant::now() >= deadline {
-                return None;
-            }
-            std::thread::sleep(Duration::from_millis(20));
-        }
-    }
-}
-
-impl Drop for Service {
-    fn drop(&mut self) {
-        if self.child.try_wait().ok().flatten().is_none() {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
-        }
-    }
-}
-
-const MODELS_V1: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
-[[channels.override]]
-match = "TT-101"
-model = "lag"
-interval = 10.0
-mean = 72.5
-tau = 300.0
-state_var = 0.015
-obs_var = 0.04
-"#;
+const MODELS_V1: &str = concat!(
+    level_default!(obs_var = 0.25, level_var = 0.01),
+    tt101_lag!(mean = 72.5),
+);
 
 /// TT-101 gets another model; LT-* channels (none seen yet) get one of their own; the default is unchanged.
-const MODELS_V2: &str = r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
+const MODELS_V2: &str = concat!(
+    level_default!(obs_var = 0.25, level_var = 0.01),
+    r#"
 [[channels.override]]
 match = "TT-101"
 model = "trend"
@@ -216,38 +114,16 @@ mean = 1.5
 tau = 600.0
 state_var = 0.0001
 obs_var = 0.0004
-"#;
+"#
+);
 
 fn daemon_sections(port: u16, client_id: &str, keep_alive_s: u32) -> String {
-    format!(
-        r#"
-[broker]
-host = "127.0.0.1"
-port = {port}
-client_id = "{client_id}"
-keep_alive_s = {keep_alive_s}
-reconnect_min_s = 0.1
-reconnect_max_s = 1.0
-
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
-[output]
-topic = "brackenfield/clean/{{channel}}"
-qos = 1
-
-[status]
-topic = "brackenfield/status/{client_id}"
-
-[timing]
-stale_after_s = 0
-"#
-    )
+    PlantSections {
+        keep_alive_s,
+        reconnect: Some((0.1, 1.0)),
+        ..PlantSections::new(port, client_id)
+    }
+    .render()
 }
 
 fn payload(t: f64, v: f64) -> String {
@@ -365,8 +241,7 @@ fn sighup_applies_new_models_keeps_unchanged_channels_and_refuses_a_bad_file() {
     assert_ne!(v3, v2);
 
     let notify = systemd.path.display().to_string();
-    let mut daemon = Service::start(
-        dir.path(),
+    let mut daemon = Daemon::start_with_env(
         &v1,
         &[
             ("NOTIFY_SOCKET", notify.as_str()),
@@ -406,7 +281,7 @@ fn sighup_applies_new_models_keeps_unchanged_channels_and_refuses_a_bad_file() {
     assert_eq!(a["TT-101"][0].model, "lag");
 
     // Reload with the second configuration.
-    daemon.rewrite(&v2);
+    daemon.rewrite_config(&v2);
     daemon.signal("HUP");
     assert!(
         daemon.wait_log("configuration reloaded", 1, Duration::from_secs(10)),
@@ -453,7 +328,7 @@ fn sighup_applies_new_models_keeps_unchanged_channels_and_refuses_a_bad_file() {
     assert_eq!(b["FT-201"][0].model, "level");
 
     // An invalid file: refused, with the key named, and everything runs on as before.
-    daemon.rewrite(&v3);
+    daemon.rewrite_config(&v3);
     daemon.signal("HUP");
     assert!(
         daemon.wait_log("configuration reload refused", 1, Duration::from_secs(10)),
@@ -518,7 +393,6 @@ fn sighup_applies_new_models_keeps_unchanged_channels_and_refuses_a_bad_file() {
 fn without_systemd_a_reload_still_works_and_nothing_is_sent() {
     // No NOTIFY_SOCKET: the daemon must not try to notify anyone, and SIGHUP must not end the process.
     let broker = TestBroker::embedded();
-    let dir = tempfile::tempdir().unwrap();
     let client_id = format!("gaugewise-test-reload-plain-{}", std::process::id());
     let watcher = TestClient::connect(broker.port());
     let status = watcher.subscribe(
@@ -529,7 +403,7 @@ fn without_systemd_a_reload_still_works_and_nothing_is_sent() {
         "{MODELS_V1}{}",
         daemon_sections(broker.port(), &client_id, 5)
     );
-    let mut daemon = Service::start(dir.path(), &v1, &[]);
+    let mut daemon = Daemon::start(&v1);
     assert!(
         wait_status(&status, "online", Duration::from_secs(10)).is_some(),
         "no online status; daemon log:\n{}",
@@ -548,7 +422,7 @@ fn without_systemd_a_reload_still_works_and_nothing_is_sent() {
         "SIGHUP ended the daemon"
     );
     // A file that is not there any more: refused, the daemon runs on.
-    std::fs::remove_file(&daemon.config).unwrap();
+    std::fs::remove_file(daemon.config_path()).unwrap();
     daemon.signal("HUP");
     assert!(
         daemon.wait_log("configuration reload refused", 1, Duration::from_secs(10)),

@@ -37,14 +37,9 @@ fn channels() -> Vec<String> {
 
 fn config_text(port: u16, index: usize, client_id: &str, metrics_port: u16) -> String {
     let prefix = PREFIX[index];
+    let models = level_default!(obs_var = 0.25, level_var = 0.01);
     format!(
-        r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-
+        r#"{models}
 [broker]
 host = "127.0.0.1"
 port = {port}

@@ -8,7 +8,7 @@
 mod common;
 
 use common::broker::{send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{plant_daemon_sections, wait_status};
+use common::daemon::{wait_status, PlantSections};
 use rumqttc::QoS;
 use serde_json::Value;
 use std::os::unix::fs::MetadataExt;
@@ -124,14 +124,9 @@ impl Drop for Run {
 fn config(port: u16, client_id: &str) -> String {
     // Variances are the test's own round numbers: any valid level model serves, nothing is checked against them.
     format!(
-        r#"
-[channels.default]
-model = "level"
-interval = 10.0
-obs_var = 0.25
-level_var = 0.01
-{}"#,
-        plant_daemon_sections(port, client_id, "")
+        "{}{}",
+        level_default!(obs_var = 0.25, level_var = 0.01),
+        PlantSections::new(port, client_id).render()
     )
 }
 
