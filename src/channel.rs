@@ -222,6 +222,11 @@ impl Channel {
         &self.detectors
     }
 
+    /// Shares its resolved flag settings with other channels' equal ones (memory, not behaviour).
+    pub fn share_flag_settings(&mut self, pool: &mut crate::detect::SettingsPool) {
+        self.detectors.share_settings(pool);
+    }
+
     /// The channel's state for a checkpoint (allocates; called at save time, not per sample).
     pub fn save(&self) -> SavedChannel {
         SavedChannel {

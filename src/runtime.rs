@@ -970,6 +970,8 @@ struct Worker {
     fits_rx: Option<mpsc::UnboundedReceiver<FitDone>>,
     channels: Vec<ChannelState>,
     stale: StaleTimer,
+    /// One copy of each distinct resolved flag design among its channels.
+    flag_pool: crate::detect::SettingsPool,
 }
 
 impl Worker {
@@ -1001,6 +1003,7 @@ impl Worker {
             index: HashMap::new(),
             channels: Vec::new(),
             stale,
+            flag_pool: crate::detect::SettingsPool::default(),
         }
     }
 
@@ -1237,7 +1240,7 @@ impl Worker {
                 continue;
             };
             let name = &self.channels[i].name;
-            let fresh = match build_channel(&self.config, name) {
+            let mut fresh = match build_channel(&self.config, name) {
                 Ok(c) => c,
                 Err(e) => {
                     // Validation builds every configured model, so this is a bug; keep the channel running.
@@ -1245,6 +1248,7 @@ impl Worker {
                     continue;
                 }
             };
+            fresh.share_flag_settings(&mut self.flag_pool);
             let state = &mut self.channels[i];
             let old_channel = std::mem::replace(&mut state.channel, fresh);
             if std::mem::take(&mut state.stale) {
@@ -1305,7 +1309,7 @@ impl Worker {
     fn add_channel(
         &mut self,
         name: &str,
-        channel: Channel,
+        mut channel: Channel,
         learner: Option<Box<Learner>>,
         last_received: f64,
     ) -> Result<usize, Refusal> {
@@ -1336,6 +1340,7 @@ impl Worker {
             let detail = format!("the daemon already keeps {max} channels (limits.max_channels)");
             return Err(refusal("too_many_channels", detail));
         }
+        channel.share_flag_settings(&mut self.flag_pool);
         let i = self.channels.len();
         self.channels.push(ChannelState {
             name: name.to_string(),
