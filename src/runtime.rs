@@ -26,6 +26,9 @@
 //! - **Shutdown.** When the `shutdown` future completes: stop routing (later messages are ignored and counted as
 //!   received only), let the workers drain their queues, publish the retained `offline` status, disconnect, and
 //!   wait until the event loop has written everything queued before the disconnect (at most [`FLUSH_TIMEOUT`]).
+//! - **Checkpoints** ([`persist`]): with a state directory, the channels saved by the last run are taken back
+//!   before the workers start, a save runs every `[state] save_every_s` (each worker encodes its channels a
+//!   chunk at a time between samples; the write is on the blocking pool), and a last one at shutdown.
 //! - **As a service** ([`run_service`], what `gaugewise run` calls; [`service`]): systemd notifications (`READY=1`
 //!   once set up, without waiting for the broker; `STATUS=` lines; `WATCHDOG=1` from the event loop task's own
 //!   tick, so a hung loop stops the pings; `STOPPING=1`), configuration reload on SIGHUP ([`reload`]), and the
