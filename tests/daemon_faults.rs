@@ -819,8 +819,19 @@ fn a_flood_of_distinct_topics_is_held_at_max_channels() {
     // Everything sent has arrived when the received counter stops short of nothing; bounded as above.
     let want = WARM_UP + FLOOD_TOPICS;
     let deadline = Instant::now() + Duration::from_secs(30);
+    // Received is counted where messages are routed; the workers publish or refuse them a moment later, so wait
+    // until every received sample has been accounted for one way or the other.
+    let settled = |text: &str| {
+        let accounted = metric(text, "gaugewise_outputs_published_total").unwrap_or(0.0)
+            + metric(
+                text,
+                r#"gaugewise_rejected_total{reason="too_many_channels"}"#,
+            )
+            .unwrap_or(0.0);
+        received(text) >= want && accounted >= want as f64
+    };
     let mut text = scrape(&gateway);
-    while received(&text) < want && Instant::now() < deadline {
+    while !settled(&text) && Instant::now() < deadline {
         std::thread::sleep(Duration::from_millis(20));
         text = scrape(&gateway);
     }
