@@ -409,10 +409,11 @@ fn an_unwritable_state_directory_is_reported_once_and_retried() {
         .unwrap()
         .duration_since(cleared)
         .is_ok());
-    let log = daemon.log();
+    // The line follows the write by a moment.
     assert!(
-        log.contains("channel state saved again after"),
-        "recovery is logged; log:\n{log}"
+        daemon.wait_log("channel state saved again after", 1, Duration::from_secs(5)),
+        "recovery is logged; log:\n{}",
+        daemon.log()
     );
     assert!(send_signal(daemon.child.id(), "TERM"));
     let code = daemon.wait(Duration::from_secs(5)).expect("stops");
