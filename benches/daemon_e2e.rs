@@ -1635,10 +1635,7 @@ impl SecondsSplit {
             }
             let k = if busy { 0 } else { 1 };
             for (acc, h) in self.hists[k].iter_mut().zip([a, b]) {
-                match acc {
-                    Some(acc) => acc.add(h).map_err(|e| format!("merging histograms: {e}"))?,
-                    None => *acc = Some(h.clone()),
-                }
+                merge_into(acc, h)?;
             }
             self.seconds[k] += 1;
             let (pa, pb) = (a.value_at_quantile(0.99), b.value_at_quantile(0.99));
@@ -1769,10 +1766,7 @@ fn case_reestimate_paired(
     for x in &reps {
         let (on, off) = x.lanes()?;
         for (acc, h) in [(&mut on_all, &on.latency), (&mut off_all, &off.latency)] {
-            match acc {
-                Some(acc) => acc.add(h).map_err(|e| format!("merging histograms: {e}"))?,
-                None => *acc = Some(h.clone()),
-            }
+            merge_into(acc, h)?;
         }
         split.add(x)?;
         per_rep.push(format!(

@@ -30,8 +30,6 @@ pub enum ResumeError {
     Flags(#[from] DesignError),
     #[error("saved time of the last sample is not finite ({0})")]
     Time(f64),
-    #[error("saved learning state names an unknown model kind {0:?}")]
-    LearningKind(String),
 }
 
 /// A channel's state as a checkpoint keeps it: the model it runs now (re-estimated parameters included), its
@@ -39,15 +37,14 @@ pub enum ResumeError {
 /// What it does not hold is configuration (the flag design): that is read again at restore.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SavedChannel {
-    /// Model kind as `ModelKind` prints it (`level`, `arma(1,1)`, ...).
-    kind: String,
+    kind: ModelKind,
     interval: f64,
     /// In the order of [`ModelSpec::values`].
     values: Vec<f64>,
     filter: FilterState,
     detectors: DetectorMemory,
     last_time: Option<f64>,
-    learning: Option<SavedLearning>,
+    learning: Option<Learning>,
 }
 
 impl SavedChannel {
@@ -55,16 +52,6 @@ impl SavedChannel {
     pub fn last_time(&self) -> Option<f64> {
         self.last_time
     }
-}
-
-/// [`Learning`] in a checkpoint.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-struct SavedLearning {
-    target: String,
-    last: f64,
-    sum_d2: f64,
-    n_d: u32,
-    scale: f64,
 }
 
 /// Why a channel could not be built.
@@ -148,7 +135,7 @@ pub fn provisional_model(interval: f64) -> ModelSpec {
 /// A channel with no configured parameters, until its first fit: the kind it is to learn and the running mean
 /// square of its first differences, which sizes the provisional model (for a level with equal variances s,
 /// E[(y_t - y_t-1)^2] = 3 s).
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 struct Learning {
     target: ModelKind,
     last: f64,
@@ -230,19 +217,13 @@ impl Channel {
     /// The channel's state for a checkpoint (allocates; called at save time, not per sample).
     pub fn save(&self) -> SavedChannel {
         SavedChannel {
-            kind: self.spec.kind().to_string(),
+            kind: self.spec.kind(),
             interval: self.spec.interval,
             values: self.spec.values(),
             filter: self.filter.save_state(),
             detectors: self.detectors.memory().clone(),
             last_time: self.last_time,
-            learning: self.learning.as_ref().map(|l| SavedLearning {
-                target: l.target.to_string(),
-                last: l.last,
-                sum_d2: l.sum_d2,
-                n_d: l.n_d,
-                scale: l.scale,
-            }),
+            learning: self.learning.as_deref().cloned(),
         }
     }
 
@@ -250,24 +231,13 @@ impl Channel {
     /// configuration is the one the state was saved under). The next sample's gap is measured from the saved
     /// last sample time, so the time the daemon was down is a gap like any other: predicted over, never filled.
     pub fn resume(saved: &SavedChannel, design: &FlagDesign) -> Result<Self, ResumeError> {
-        let kind = ModelKind::parse(&saved.kind)?;
-        let spec = ModelSpec::from_values(kind, saved.interval, &saved.values)?;
+        let spec = ModelSpec::from_values(saved.kind, saved.interval, &saved.values)?;
         let mut filter = Filter::new(&spec)?;
         filter.restore_state(&saved.filter)?;
         if let Some(t) = saved.last_time.filter(|t| !t.is_finite()) {
             return Err(ResumeError::Time(t));
         }
-        let learning = match &saved.learning {
-            None => None,
-            Some(l) => Some(Box::new(Learning {
-                target: ModelKind::parse(&l.target)
-                    .map_err(|_| ResumeError::LearningKind(l.target.clone()))?,
-                last: l.last,
-                sum_d2: l.sum_d2,
-                n_d: l.n_d,
-                scale: l.scale,
-            })),
-        };
+        let learning = saved.learning.clone().map(Box::new);
         Ok(Channel {
             detectors: Detectors::resume(design.resolve(spec.interval)?, saved.detectors.clone()),
             spec,
@@ -623,9 +593,11 @@ mod tests {
             Channel::resume(&bad, &FlagDesign::default()),
             Err(ResumeError::Model(ModelError::ValueCount { .. }))
         ));
-        let mut bad = good.clone();
-        bad.kind = "kalman".into();
-        assert!(Channel::resume(&bad, &FlagDesign::default()).is_err());
+        // An unknown model kind does not even decode.
+        let mut bytes = rmp_serde::to_vec(&good).unwrap();
+        let at = bytes.windows(3).position(|w| w == b"lag").unwrap();
+        bytes[at + 1] = b'u';
+        assert!(rmp_serde::from_slice::<SavedChannel>(&bytes).is_err());
         let mut bad = good;
         bad.last_time = Some(f64::INFINITY);
         assert!(matches!(

@@ -315,25 +315,9 @@ impl Store {
         name: &str,
         value: &T,
     ) -> Result<u64, CheckpointError> {
-        let target = self.path(name)?;
-        let bytes = self.encode(name, value)?;
-        fs::create_dir_all(&self.dir)
-            .map_err(|e| CheckpointError::writing("create directory", &self.dir, e))?;
-        let (tmp_path, file) = self.create_temp(name)?;
-        let written = write_and_sync(file, &bytes)
-            .map_err(|(op, e)| CheckpointError::writing(op, &tmp_path, e))
-            .and_then(|()| {
-                fs::rename(&tmp_path, &target)
-                    .map_err(|e| CheckpointError::writing("rename into place", &target, e))
-            });
-        if let Err(e) = written {
-            let _ = fs::remove_file(&tmp_path);
-            return Err(e);
-        }
-        // The rename is durable only once the directory entry is. Some file systems refuse fsync on a directory
-        // (EINVAL); the rename has still happened there, so that is not a failure.
-        sync_dir(&self.dir)?;
-        Ok(bytes.len() as u64)
+        self.path(name)?;
+        let payload = encode(name, value)?;
+        self.save_parts(name, &[&payload])
     }
 
     /// [`Store::save`] for a payload that is already MessagePack, given in parts written one after the other (so
@@ -360,7 +344,7 @@ impl Store {
         let mut all: Vec<&[u8]> = Vec::with_capacity(parts.len() + 1);
         all.push(&header);
         all.extend_from_slice(parts);
-        let written = write_parts_and_sync(file, &all)
+        let written = write_and_sync(file, &all)
             .map_err(|(op, e)| CheckpointError::writing(op, &tmp_path, e))
             .and_then(|()| {
                 fs::rename(&tmp_path, &target)
@@ -370,6 +354,8 @@ impl Store {
             let _ = fs::remove_file(&tmp_path);
             return Err(e);
         }
+        // The rename is durable only once the directory entry is. Some file systems refuse fsync on a directory
+        // (EINVAL); the rename has still happened there, so that is not a failure.
         sync_dir(&self.dir)?;
         Ok(HEADER_LEN as u64 + payload_len)
     }
@@ -447,32 +433,6 @@ impl Store {
         Ok(removed)
     }
 
-    fn encode<T: Serialize + ?Sized>(
-        &self,
-        name: &str,
-        value: &T,
-    ) -> Result<Vec<u8>, CheckpointError> {
-        let mut buf = vec![0u8; HEADER_LEN];
-        let mut ser = rmp_serde::Serializer::new(&mut buf).with_struct_map();
-        value
-            .serialize(&mut ser)
-            .map_err(|e| CheckpointError::Encode {
-                name: name.to_string(),
-                reason: e.to_string(),
-            })?;
-        let payload_len = (buf.len() - HEADER_LEN) as u64;
-        if payload_len > self.max_payload {
-            return Err(CheckpointError::TooLarge {
-                name: name.to_string(),
-                size: payload_len,
-                limit: self.max_payload,
-            });
-        }
-        let header = header(self.schema, &buf[HEADER_LEN..]);
-        buf[..HEADER_LEN].copy_from_slice(&header);
-        Ok(buf)
-    }
-
     fn create_temp(&self, name: &str) -> Result<(PathBuf, File), CheckpointError> {
         let pid = std::process::id();
         // A stale file of a previous process with the same pid is the only way the name can already exist.
@@ -528,6 +488,20 @@ fn check_name(name: &str) -> Result<(), CheckpointError> {
     }
 }
 
+/// The MessagePack payload of `value`, structs as maps keyed by field name (see the module notes).
+fn encode<T: Serialize + ?Sized>(name: &str, value: &T) -> Result<Vec<u8>, CheckpointError> {
+    let mut buf = Vec::new();
+    let mut ser = rmp_serde::Serializer::new(&mut buf).with_struct_map();
+    value
+        .serialize(&mut ser)
+        .map_err(|e| CheckpointError::Encode {
+            name: name.to_string(),
+            reason: e.to_string(),
+        })?;
+    Ok(buf)
+}
+
+#[cfg(test)]
 fn header(schema: u32, payload: &[u8]) -> [u8; HEADER_LEN] {
     header_for(schema, payload.len() as u64, crc32fast::hash(payload))
 }
@@ -616,7 +590,7 @@ fn read_bounded(path: &Path, limit: u64) -> io::Result<Option<Vec<u8>>> {
     })
 }
 
-fn write_parts_and_sync(file: File, parts: &[&[u8]]) -> Result<(), (&'static str, io::Error)> {
+fn write_and_sync(file: File, parts: &[&[u8]]) -> Result<(), (&'static str, io::Error)> {
     let mut w = io::BufWriter::with_capacity(1 << 16, file);
     for p in parts {
         w.write_all(p).map_err(|e| ("write temporary file", e))?;
@@ -624,12 +598,6 @@ fn write_parts_and_sync(file: File, parts: &[&[u8]]) -> Result<(), (&'static str
     let file = w
         .into_inner()
         .map_err(|e| ("write temporary file", e.into_error()))?;
-    file.sync_all().map_err(|e| ("fsync temporary file", e))
-}
-
-fn write_and_sync(mut file: File, bytes: &[u8]) -> Result<(), (&'static str, io::Error)> {
-    file.write_all(bytes)
-        .map_err(|e| ("write temporary file", e))?;
     // Without this the rename can reach the disk before the data, and a power cut leaves an empty checkpoint.
     file.sync_all().map_err(|e| ("fsync temporary file", e))
 }
@@ -1025,7 +993,9 @@ mod tests {
         // What a crash between "write temporary file" and "rename" leaves: a temp file, possibly half-written.
         let mut newer = old.clone();
         newer.saved_at += 60.0;
-        let full = store.encode("channels", &newer).unwrap();
+        let payload = encode("channels", &newer).unwrap();
+        let mut full = header(store.schema(), &payload).to_vec();
+        full.extend_from_slice(&payload);
         let stray = store.dir().join(".channels.tmp-4242-7");
         fs::write(&stray, &full[..full.len() / 2]).unwrap();
         let other_name = store.dir().join(".other.tmp-4242-8");

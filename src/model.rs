@@ -108,6 +108,20 @@ impl ModelKind {
     }
 }
 
+/// In saved state a kind is its text (`level`, `arma(1,1)`), the same words the configuration uses.
+impl serde::Serialize for ModelKind {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
+impl<'de> serde::Deserialize<'de> for ModelKind {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        let text = String::deserialize(d)?;
+        ModelKind::parse(&text).map_err(serde::de::Error::custom)
+    }
+}
+
 impl fmt::Display for ModelKind {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {

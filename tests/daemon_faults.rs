@@ -34,7 +34,7 @@ use common::broker::{
     free_port, recv_n, send_signal, wait_for_port, ClientOptions, Message, Mosquitto, TestClient,
     WAIT,
 };
-use common::daemon::{epoch_now, wait_status};
+use common::daemon::{epoch_now, plant_inputs, wait_status};
 use gaugewise::ingest::{InputRule, PayloadFormat, Reject, TimeFormat};
 use proptest::prelude::*;
 use rcgen::{
@@ -162,14 +162,7 @@ reconnect_min_s = {RECONNECT_MIN_S:?}
 reconnect_max_s = {RECONNECT_MAX_S:?}
 {broker_lines}
 
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = {input_qos}
-
+{inputs}
 [output]
 topic = "brackenfield/clean/{{channel}}"
 qos = 0
@@ -182,6 +175,7 @@ stale_after_s = 0
 {tail}
 "#,
         status = status_topic(client_id),
+        inputs = plant_inputs(input_qos),
     )
 }
 

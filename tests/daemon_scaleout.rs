@@ -10,7 +10,7 @@
 mod common;
 
 use common::broker::{free_port, recv_n, send_signal, TestBroker, TestClient, WAIT};
-use common::daemon::{epoch_now, wait_status, Daemon};
+use common::daemon::{epoch_now, plant_inputs, wait_status, Daemon};
 use gaugewise::publish::OutputMessage;
 use gaugewise::runtime::shard::instance_of;
 use rumqttc::QoS;
@@ -38,6 +38,7 @@ fn channels() -> Vec<String> {
 fn config_text(port: u16, index: usize, client_id: &str, metrics_port: u16) -> String {
     let prefix = PREFIX[index];
     let models = level_default!(obs_var = 0.25, level_var = 0.01);
+    let inputs = plant_inputs(1);
     format!(
         r#"{models}
 [broker]
@@ -48,14 +49,7 @@ keep_alive_s = 5
 reconnect_min_s = 0.1
 reconnect_max_s = 1.0
 
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
+{inputs}
 [output]
 topic = "brackenfield/clean/{prefix}/{{channel}}"
 qos = 1

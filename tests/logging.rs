@@ -32,6 +32,25 @@ enum JournalStream {
     MatchingStderr,
 }
 
+/// Runs the daemon until it has connected, stops it with SIGTERM, checks it exited 0 and returns its log.
+fn connect_and_stop(
+    broker: &TestBroker,
+    client_id: &str,
+    format: Option<&str>,
+    journal: JournalStream,
+    name: &str,
+) -> String {
+    let run = Run::start(&config(broker.port(), client_id), format, journal);
+    assert!(
+        run.wait_log("connected", WAIT),
+        "{name}: not connected:\n{}",
+        run.log()
+    );
+    let (exit, log) = run.stop();
+    assert_eq!(exit.and_then(|s| s.code()), Some(0), "{name}: log:\n{log}");
+    log
+}
+
 /// `gaugewise run` with its stderr in a scratch file; killed if a test ends without stopping it.
 struct Run {
     child: Child,
@@ -267,18 +286,13 @@ fn text_has_no_json_and_no_escape_codes_off_a_terminal() {
         ("auto, other stream", None, JournalStream::Value("1:2")),
     ];
     for (i, (name, format, journal)) in cases.into_iter().enumerate() {
-        let run = Run::start(
-            &config(broker.port(), &format!("gw-logging-text-{i}")),
+        let log = connect_and_stop(
+            &broker,
+            &format!("gw-logging-text-{i}"),
             format,
             journal,
+            name,
         );
-        assert!(
-            run.wait_log("connected", WAIT),
-            "{name}: not connected:\n{}",
-            run.log()
-        );
-        let (exit, log) = run.stop();
-        assert_eq!(exit.and_then(|s| s.code()), Some(0), "{name}: log:\n{log}");
         assert_plain_text(&log);
     }
 }
@@ -296,18 +310,13 @@ fn journal_without_its_socket_falls_back_to_json_with_one_warning() {
         ("journald", Some("journald"), JournalStream::Unset),
     ];
     for (i, (name, format, journal)) in cases.into_iter().enumerate() {
-        let run = Run::start(
-            &config(broker.port(), &format!("gw-logging-journal-{i}")),
+        let log = connect_and_stop(
+            &broker,
+            &format!("gw-logging-journal-{i}"),
             format,
             journal,
+            name,
         );
-        assert!(
-            run.wait_log("connected", WAIT),
-            "{name}: not connected:\n{}",
-            run.log()
-        );
-        let (exit, log) = run.stop();
-        assert_eq!(exit.and_then(|s| s.code()), Some(0), "{name}: log:\n{log}");
         let lines = json_lines(&log);
         let warnings: Vec<_> = lines
             .iter()

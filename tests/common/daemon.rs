@@ -249,6 +249,7 @@ impl<'a> PlantSections<'a> {
         } else {
             format!("{output_extra}\n")
         };
+        let inputs = plant_inputs(1);
         let stale = match stale {
             None => "stale_after_s = 0\n".to_string(),
             Some((after, every)) => format!("stale_after_s = {after}\nstale_every_s = {every}\n"),
@@ -261,14 +262,7 @@ port = {port}
 client_id = "{client_id}"
 keep_alive_s = {keep_alive_s}
 {reconnect}
-[[inputs]]
-topic = "brackenfield/raw/+"
-channel = "{{2}}"
-payload = "json"
-value = "/v"
-time = "/t"
-qos = 1
-
+{inputs}
 [output]
 topic = "brackenfield/clean/{{channel}}"
 {output_extra}qos = 1
@@ -280,4 +274,19 @@ topic = "brackenfield/status/{client_id}"
 {stale}{extra}"#
         )
     }
+}
+
+/// The `[[inputs]]` table every daemon test uses: JSON samples `{"t":..,"v":..}` on `brackenfield/raw/<channel>`
+/// at QoS `qos`.
+pub fn plant_inputs(qos: u8) -> String {
+    format!(
+        r#"[[inputs]]
+topic = "brackenfield/raw/+"
+channel = "{{2}}"
+payload = "json"
+value = "/v"
+time = "/t"
+qos = {qos}
+"#
+    )
 }
